@@ -1,0 +1,75 @@
+"""attnscope: see and check what the attention of small transformer models does.
+
+>>> import torch, attnscope
+>>> mha = torch.nn.MultiheadAttention(8, 2, batch_first=True)
+>>> x = torch.randn(1, 4, 8)
+>>> with attnscope.capture(mha) as cap:
+...     _ = mha(x, x, x)
+>>> cap.head_table()[["name", "head"]].values.tolist()
+[['', 0], ['', 1]]
+
+Attention weights show where a model looked, not why it decided: they are not a faithful explanation of its
+decisions (Jain & Wallace 2019) and are no basis for high-stakes decisions.
+"""
+
+from __future__ import annotations
+
+import importlib
+from typing import Any
+
+from attnscope.capture import Capture, capture, tap
+from attnscope.errors import (
+    AttnscopeError,
+    AttnscopeWarning,
+    CaptureError,
+    CaptureFileError,
+    CaptureStateError,
+    MemoryBudgetError,
+    NoAttentionError,
+    OptionError,
+    ProbeError,
+    ShapeError,
+    UnsupportedModelError,
+)
+from attnscope.records import AttentionRecord, HeadSums, ResidualRecord
+
+__version__ = "0.1.0"
+
+# Heavier parts load on first use, so `import attnscope` stays light (no bokeh, no widgets, no scipy).
+_LAZY = {
+    "save": "attnscope.io",
+    "load": "attnscope.io",
+}
+
+__all__ = sorted([
+    "AttentionRecord",
+    "AttnscopeError",
+    "AttnscopeWarning",
+    "Capture",
+    "CaptureError",
+    "CaptureFileError",
+    "CaptureStateError",
+    "HeadSums",
+    "MemoryBudgetError",
+    "NoAttentionError",
+    "OptionError",
+    "ProbeError",
+    "ResidualRecord",
+    "ShapeError",
+    "UnsupportedModelError",
+    "capture",
+    "tap",
+    *_LAZY,
+])
+
+
+def __getattr__(name: str) -> Any:
+    if name in _LAZY:
+        value = getattr(importlib.import_module(_LAZY[name]), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'attnscope' has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(__all__))

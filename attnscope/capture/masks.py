@@ -1,0 +1,124 @@
+"""Turn the masks an attention call applied into one boolean "allowed" array, and recompute SDPA weights.
+
+Conventions differ between torch entry points, and this module is the one place that knows them:
+
+* ``F.scaled_dot_product_attention``: a bool ``attn_mask`` is True where a query **may** attend; a float mask
+  is added to the scores; ``is_causal`` applies a lower-triangular mask aligned to the top-left corner.
+* ``nn.MultiheadAttention``: a bool ``attn_mask`` or ``key_padding_mask`` is True where a query may **not**
+  attend; float masks are added.
+
+A float mask counts as forbidding a key where it is ``-inf`` or at most :data:`FORBID_AT` (masks built with a
+large finite negative number, as many libraries do, forbid keys just as ``-inf`` does).
+"""
+
+from __future__ import annotations
+
+import math
+
+import torch
+
+__all__ = ["FORBID_AT", "causal_allowed", "compact", "is_causal_mask", "sdpa_weights"]
+
+#: A float mask value at or below this forbids the key (``-inf``, ``finfo.min``, ``-1e9``, ``-1e4`` do).
+FORBID_AT = -1.0e4
+
+
+def _forbidden_from_float(mask: torch.Tensor) -> torch.Tensor:
+    return mask <= FORBID_AT  # -inf <= x holds too
+
+
+def causal_allowed(tq: int, tk: int, offset: int = 0) -> torch.Tensor:
+    """``(Tq, Tk)`` bool: query *i* may see key *j* when ``j <= i + offset``."""
+    return torch.ones(tq, tk, dtype=torch.bool).tril(diagonal=offset)
+
+
+def sdpa_allowed(attn_mask: torch.Tensor | None, is_causal: bool, tq: int, tk: int) -> torch.Tensor | None:
+    """Allowed mask of one ``scaled_dot_product_attention`` call, broadcastable to ``(..., Tq, Tk)``."""
+    allowed = causal_allowed(tq, tk) if is_causal else None
+    if attn_mask is not None:
+        m = attn_mask.detach()
+        ok = m.to(torch.bool) if m.dtype == torch.bool else ~_forbidden_from_float(m)
+        allowed = ok if allowed is None else allowed & ok
+    return allowed
+
+
+def mha_allowed(attn_mask: torch.Tensor | None, key_padding_mask: torch.Tensor | None,
+                batch: int, heads: int, tq: int, tk: int) -> torch.Tensor | None:
+    """Allowed mask of one ``nn.MultiheadAttention`` call as ``(B, H or 1, Tq, Tk)`` bool, or None.
+
+    ``attn_mask`` is ``(Tq, Tk)`` or ``(B*H, Tq, Tk)``; ``key_padding_mask`` is ``(B, Tk)`` (or ``(Tk,)`` unbatched).
+    Keys added by ``bias_k`` or ``add_zero_attn`` (beyond the masks' width) are allowed, as torch pads them so.
+    """
+    allowed = None
+    if attn_mask is not None:
+        m = attn_mask.detach()
+        bad = m.to(torch.bool) if m.dtype == torch.bool else _forbidden_from_float(m)
+        bad = bad.reshape(batch, heads, tq, -1) if bad.dim() == 3 else bad.reshape(1, 1, tq, -1)
+        allowed = _pad_keys(~bad, tk)
+    if key_padding_mask is not None:
+        m = key_padding_mask.detach()
+        bad = m.to(torch.bool) if m.dtype == torch.bool else _forbidden_from_float(m)
+        ok = _pad_keys((~bad).reshape(batch, 1, 1, -1), tk)
+        allowed = ok if allowed is None else allowed & ok
+    return allowed
+
+
+def _pad_keys(allowed: torch.Tensor, tk: int) -> torch.Tensor:
+    extra = tk - allowed.shape[-1]
+    if extra <= 0:
+        return allowed
+    pad = torch.ones(*allowed.shape[:-1], extra, dtype=torch.bool)
+    return torch.cat([allowed, pad], dim=-1)
+
+
+def compact(allowed: torch.Tensor | None, shape: tuple[int, int, int, int]) -> torch.Tensor | None:
+    """Return *allowed* as ``(B or 1, H or 1, Tq, Tk)`` bool with size-1 axes where it does not vary, or None if all True."""
+    if allowed is None:
+        return None
+    b, h, tq, tk = shape
+    a = allowed.to(torch.bool)
+    while a.dim() < 4:
+        a = a.unsqueeze(0)
+    if a.dim() > 4:  # extra leading batch axes were folded into B by the caller
+        a = a.reshape(-1, *a.shape[-3:])
+    a = a.expand(a.shape[0] if a.shape[0] != 1 else 1, a.shape[1], tq, tk)
+    if bool(a.all()):
+        return None
+    if a.shape[1] > 1 and bool((a == a[:, :1]).all()):
+        a = a[:, :1]
+    if a.shape[0] > 1 and bool((a == a[:1]).all()):
+        a = a[:1]
+    return a.contiguous()
+
+
+def is_causal_mask(allowed: torch.Tensor | None, tq: int, tk: int, offset: int) -> bool:
+    """True when *allowed* forbids every key later than the query (``j > i + offset``)."""
+    if allowed is None:
+        return False
+    future = ~causal_allowed(tq, tk, offset)  # (Tq, Tk)
+    return not bool((allowed & future).any())
+
+
+def sdpa_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | None = None,
+                 is_causal: bool = False, scale: float | None = None, enable_gqa: bool = False) -> torch.Tensor:
+    """softmax(Q Kᵀ · scale + mask) with the semantics of ``F.scaled_dot_product_attention``, in float32.
+
+    ``q`` is ``(B, Hq, Tq, E)``, ``k`` is ``(B, Hk, Tk, E)``; with ``enable_gqa`` each key head serves
+    ``Hq // Hk`` consecutive query heads. Rows with no allowed key are all zeros (the fused kernels return a
+    zero output there). Returns ``(B, Hq, Tq, Tk)``.
+    """
+    q = q.detach().float()
+    k = k.detach().float()
+    if enable_gqa and k.size(-3) != q.size(-3):
+        k = k.repeat_interleave(q.size(-3) // k.size(-3), dim=-3)
+    tq, tk = q.size(-2), k.size(-2)
+    scale = 1.0 / math.sqrt(q.size(-1)) if scale is None else scale
+    scores = (q @ k.transpose(-2, -1)) * scale  # (B, H, Tq, Tk)
+    if is_causal:
+        scores = scores.masked_fill(~causal_allowed(tq, tk), float("-inf"))
+    if attn_mask is not None:
+        m = attn_mask.detach()
+        scores = scores.masked_fill(~m, float("-inf")) if m.dtype == torch.bool else scores + m.float()
+    weights = torch.softmax(scores, dim=-1)
+    empty = torch.isneginf(scores).all(dim=-1, keepdim=True)  # (B, H, Tq, 1): no allowed key
+    return weights.masked_fill(empty, 0.0)  # softmax gives NaN there; the fused kernels give a zero output
