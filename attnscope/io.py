@@ -22,6 +22,7 @@ import io
 import json
 import os
 import zipfile
+import zlib
 from dataclasses import fields
 from typing import Any
 
@@ -88,7 +89,7 @@ def load(path: str | os.PathLike) -> Capture:
         raise
     except FileNotFoundError:
         raise
-    except (zipfile.BadZipFile, zipfile.LargeZipFile, EOFError, OSError) as err:
+    except (zipfile.BadZipFile, zipfile.LargeZipFile, zlib.error, EOFError, OSError) as err:
         raise CaptureFileError(f"{where} is not a readable attnscope capture (not a complete zip archive: {err})") from err
     except (KeyError, TypeError, ValueError) as err:
         raise CaptureFileError(f"{where} is not a valid attnscope capture: {err}") from err

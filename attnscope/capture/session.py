@@ -283,7 +283,7 @@ class Capture:
             selected = (self._selected is None or name in self._selected
                         or bool(stack and stack[-1].selected and self._selected is not None))
             stack.append(_Frame(name, module, self._kind_hint(name, module, args, kwargs), selected))
-            if name in self._map.attention:
+            if selected and name in self._map.attention:
                 self._c.ran.add(name)
             return None
         return hook
@@ -582,7 +582,7 @@ def _first_tensor(output: Any) -> torch.Tensor | None:
 
 
 def _mb(n: int) -> str:
-    return f"{n / 1024**2:.1f} MiB"
+    return f"{n / 1024**2:.1f} MiB" if n >= 1024**2 else f"{n / 1024:.1f} KiB" if n >= 1024 else f"{n} bytes"
 
 
 def capture(model: nn.Module, *, keep: str = "maps", layers: Sequence[str | int] | None = None,
