@@ -33,25 +33,27 @@ def head_sums(weights: torch.Tensor, allowed: torch.Tensor | None = None, query_
     """
     w = weights.detach().float()  # (B, H, Tq, Tk)
     b, h, tq, tk = w.shape
-    finite = torch.isfinite(w).all(dim=-1)  # (B, H, Tq)
-    w = torch.where(finite.unsqueeze(-1), w, torch.zeros((), dtype=w.dtype))
+    row_sum = w.sum(dim=-1)  # (B, H, Tq); weights are >= 0, so a NaN or inf anywhere in a row shows here
+    finite = torch.isfinite(row_sum)
+    if not bool(finite.all()):
+        w = torch.where(finite.unsqueeze(-1), w, torch.zeros((), dtype=w.dtype))
     if allowed is None:
         n_allowed = torch.full((b, h, tq), tk, dtype=torch.int64)
         first = torch.zeros((b, h, tq, 1), dtype=torch.int64)
         leak = torch.zeros((b, h, tq))
     else:
-        a = allowed.to(torch.bool).expand(b, h, tq, tk)  # (B, H, Tq, Tk), a view
-        n_allowed = a.sum(dim=-1)  # (B, H, Tq)
-        first = a.to(torch.uint8).argmax(dim=-1, keepdim=True)  # first allowed key, (B, H, Tq, 1)
-        leak = w.masked_fill(a, 0.0).sum(dim=-1)  # (B, H, Tq)
+        a = allowed.to(torch.bool)  # broadcastable, often (1, 1, Tq, Tk): keep it small
+        n_allowed = a.sum(dim=-1).expand(b, h, tq)  # (B, H, Tq)
+        first = a.to(torch.uint8).argmax(dim=-1, keepdim=True).expand(b, h, tq, 1)  # first allowed key
+        leak = (w * (~a).to(w.dtype)).sum(dim=-1)  # (B, H, Tq)
     counted = finite & (n_allowed >= 1)  # (B, H, Tq)
     with_choice = counted & (n_allowed >= 2)
-    entropy = -torch.special.xlogy(w, w).sum(dim=-1)  # (B, H, Tq), 0·ln 0 = 0
+    entropy = torch.special.entr(w).sum(dim=-1)  # (B, H, Tq), -w ln w with 0 ln 0 = 0
     ratio = entropy / torch.log(n_allowed.clamp_min(2).to(w.dtype))
     q_pos = torch.arange(tq, dtype=w.dtype) + query_offset
     k_pos = torch.arange(tk, dtype=w.dtype)
     dist = (q_pos[:, None] - k_pos[None, :]).abs()  # (Tq, Tk)
-    distance = torch.einsum("bhqk,qk->bhq", w, dist)
+    distance = (w * dist).sum(dim=-1)  # (B, H, Tq)
 
     def total(x: torch.Tensor, where: torch.Tensor) -> np.ndarray:
         return (x.double() * where).sum(dim=(0, 2)).numpy()  # (H,)
@@ -62,7 +64,7 @@ def head_sums(weights: torch.Tensor, allowed: torch.Tensor | None = None, query_
         ratio_rows=with_choice.double().sum(dim=(0, 2)).numpy(),
         entropy_ratio=total(ratio, with_choice),
         max_weight=total(w.amax(dim=-1), counted),
-        sink_mass=total(w.gather(-1, first.expand(b, h, tq, 1)).squeeze(-1), counted),
+        sink_mass=total(w.gather(-1, first).squeeze(-1), counted),
         distance=total(distance, counted),
         leak_mass=total(leak, counted),
         nonfinite=(~finite).double().sum(dim=(0, 2)).numpy(),

@@ -13,6 +13,7 @@ large finite negative number, as many libraries do, forbid keys just as ``-inf``
 
 from __future__ import annotations
 
+import functools
 import math
 
 import torch
@@ -27,9 +28,15 @@ def _forbidden_from_float(mask: torch.Tensor) -> torch.Tensor:
     return mask <= FORBID_AT  # -inf <= x holds too
 
 
+@functools.lru_cache(maxsize=64)
 def causal_allowed(tq: int, tk: int, offset: int = 0) -> torch.Tensor:
-    """``(Tq, Tk)`` bool: query *i* may see key *j* when ``j <= i + offset``."""
+    """``(Tq, Tk)`` bool: query *i* may see key *j* when ``j <= i + offset``. Cached: never modify it."""
     return torch.ones(tq, tk, dtype=torch.bool).tril(diagonal=offset)
+
+
+@functools.lru_cache(maxsize=64)
+def _causal_forbidden(tq: int, tk: int) -> torch.Tensor:
+    return ~causal_allowed(tq, tk)
 
 
 def sdpa_allowed(attn_mask: torch.Tensor | None, is_causal: bool, tq: int, tk: int) -> torch.Tensor | None:
@@ -113,12 +120,21 @@ def sdpa_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | Non
         k = k.repeat_interleave(q.size(-3) // k.size(-3), dim=-3)
     tq, tk = q.size(-2), k.size(-2)
     scale = 1.0 / math.sqrt(q.size(-1)) if scale is None else scale
-    scores = (q @ k.transpose(-2, -1)) * scale  # (B, H, Tq, Tk)
+    scores = torch.matmul(q * scale, k.transpose(-2, -1))  # (B, H, Tq, Tk); scaling q is the cheaper side
+    masked = is_causal
     if is_causal:
-        scores = scores.masked_fill(~causal_allowed(tq, tk), float("-inf"))
+        scores.masked_fill_(_causal_forbidden(tq, tk), float("-inf"))
     if attn_mask is not None:
         m = attn_mask.detach()
-        scores = scores.masked_fill(~m, float("-inf")) if m.dtype == torch.bool else scores + m.float()
+        if m.dtype == torch.bool:
+            scores.masked_fill_(~m, float("-inf"))
+            masked = True
+        else:
+            scores = scores + m.float()  # not in place: the mask may broadcast to a larger shape
+            masked = masked or bool(torch.isneginf(m).any())
     weights = torch.softmax(scores, dim=-1)
-    empty = torch.isneginf(scores).all(dim=-1, keepdim=True)  # (B, H, Tq, 1): no allowed key
-    return weights.masked_fill(empty, 0.0)  # softmax gives NaN there; the fused kernels give a zero output
+    if masked:
+        empty = torch.isneginf(scores.amax(dim=-1, keepdim=True))  # (B, H, Tq, 1): no allowed key
+        if bool(empty.any()):
+            weights.masked_fill_(empty, 0.0)  # softmax gives NaN there; the fused kernels give a zero output
+    return weights

@@ -1,0 +1,7 @@
+"""``python -m attnscope`` runs the command line."""
+
+import sys
+
+from attnscope.cli import main
+
+sys.exit(main())
