@@ -10,8 +10,9 @@ AttentionRecord(name='self_attn', kind='self', weights=(2, 2, 5, 5), causal=Fals
 
 from __future__ import annotations
 
-import fnmatch
+import functools
 import inspect
+import re
 import threading
 import warnings
 from collections.abc import Iterable, Mapping, Sequence
@@ -52,6 +53,22 @@ _SDPA_PARAMS = ("query", "key", "value", "attn_mask", "dropout_p", "is_causal", 
 _CROSS_KWARGS = ("key_value_states", "encoder_hidden_states", "memory", "context", "encoder_out",
                  "encoder_output", "cross_states", "kv")
 _CROSS_NAME = ("cross", "encoder_attn", "encdec", "enc_dec", "multihead_attn")
+
+
+
+@functools.lru_cache(maxsize=256)
+def _pattern(pattern: str) -> re.Pattern:
+    """Module-name glob: ``*`` and ``?`` stay within one dotted part, ``**`` crosses dots."""
+    out = []
+    for part in re.split(r"(\*\*|\*|\?)", pattern):
+        out.append({"**": ".*", "*": "[^.]*", "?": "[^.]"}.get(part, re.escape(part)))
+    return re.compile("".join(out) + r"\Z")
+
+
+def name_matches(name: str, pattern: str) -> bool:
+    """Whether dotted module *name* matches *pattern* (see :func:`_pattern`)."""
+    return _pattern(pattern).match(name) is not None
+
 
 _active_lock = threading.Lock()
 _active: list[Capture] = []  # open captures, for tap()
@@ -160,7 +177,7 @@ class Capture:
                                       f"attention modules ({', '.join(leaves[:6])}{', ...' if len(leaves) > 6 else ''})")
                 chosen.add(leaves[item])
                 continue
-            hits = [n for n in all_names if fnmatch.fnmatchcase(n, item)]
+            hits = [n for n in all_names if name_matches(n, item)]
             if not hits:
                 raise OptionError(f"layers= names {item!r}, which matches no module of {type(self._model).__name__}."
                                   f"{suggest(item, self._map.attention or all_names)}")
@@ -187,7 +204,7 @@ class Capture:
             return self._map.blocks
         names = []
         for b in [blocks] if isinstance(blocks, str) else blocks:
-            hits = [n for n in all_names if fnmatch.fnmatchcase(n, b)] if isinstance(b, str) else []
+            hits = [n for n in all_names if name_matches(n, b)] if isinstance(b, str) else []
             if not hits:
                 raise OptionError(f"blocks= names {b!r}, which matches no module of {type(self._model).__name__}."
                                   f"{suggest(str(b), self._map.blocks or all_names)}")
@@ -199,7 +216,7 @@ class Capture:
         for pattern, kind in (kinds or {}).items():
             if kind not in ("self", "cross"):
                 raise OptionError(f"kinds= maps {pattern!r} to {kind!r}; expected 'self' or 'cross'")
-            if not any(fnmatch.fnmatchcase(n, pattern) for n in all_names):
+            if not any(name_matches(n, pattern) for n in all_names):
                 raise OptionError(f"kinds= names {pattern!r}, which matches no module.{suggest(pattern, all_names)}")
             out.append((pattern, kind))
         return out
@@ -302,7 +319,7 @@ class Capture:
 
     def _kind_hint(self, name: str, module: nn.Module, args: tuple, kwargs: dict) -> str | None:
         for pattern, kind in self._kinds:
-            if fnmatch.fnmatchcase(name, pattern):
+            if name_matches(name, pattern):
                 return kind
         if getattr(module, "is_cross_attention", False):
             return "cross"
@@ -363,10 +380,24 @@ class Capture:
         bound.apply_defaults()
         a = bound.arguments
         want_weights, average = a["need_weights"], a["average_attn_weights"]
+        if a["training"] and a["dropout_p"] > 0:
+            # Attention dropout draws random numbers differently on the fused and the math path: run the call
+            # as it was, then get the (pre-dropout) weights from a second, dropout-free math-path call.
+            result = func(*bound.args, **bound.kwargs)
+            a["need_weights"], a["average_attn_weights"], a["dropout_p"] = True, False, 0.0
+            with torch.no_grad():
+                w = func(*bound.args, **bound.kwargs)[1].detach()
+            self._record_mha(frame, a, w)
+            return result
         a["need_weights"], a["average_attn_weights"] = True, False
         # With need_weights=True torch takes its math path and returns the per-head weights it multiplied V by.
         out, weights = func(*bound.args, **bound.kwargs)
-        w = weights.detach()
+        self._record_mha(frame, a, weights.detach())
+        if not want_weights:
+            return out, None
+        return out, (weights.mean(dim=-3) if average else weights)
+
+    def _record_mha(self, frame: _Frame, a: dict, w: torch.Tensor) -> None:
         w4 = w.unsqueeze(0) if w.dim() == 3 else w  # (B, H, Tq, Tk)
         b, h, tq, tk = w4.shape
         query, key = a["query"], a["key"]
@@ -380,9 +411,6 @@ class Capture:
         causal = bool(a["is_causal"]) or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, 0))
         self._record(frame, kind, (b, h, tq, tk), heads, allowed, causal, "mha", 0,
                      lambda sl: w4[sl][:, list(heads)].float().clone())
-        if not want_weights:
-            return out, None
-        return out, (weights.mean(dim=-3) if average else weights)
 
     def _on_softmax(self, func, args, kwargs):
         out = func(*args, **kwargs)
@@ -603,7 +631,7 @@ def capture(model: nn.Module, *, keep: str = "maps", layers: Sequence[str | int]
         model: the module to watch. Every forward call of it (or of its submodules) inside the block is seen.
         keep: ``"maps"`` keeps full weights ``(B, H, Tq, Tk)`` per call; ``"stats"`` reduces each call to
             per-head statistics at once and keeps no map.
-        layers: module names, fnmatch patterns (``"decoder.*"``) or indices into the model's innermost attention
+        layers: module names, patterns (``"decoder.layers.*"``: ``*`` within one dotted part, ``**`` across) or indices into the model's innermost attention
             modules; only calls inside them are recorded. Needed for attention in a module capture cannot recognise.
         heads: head indices to keep (the same for every attention module).
         blocks: names or patterns of the blocks whose outputs are the residual stream (found automatically for

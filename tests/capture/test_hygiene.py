@@ -201,3 +201,21 @@ def test_deepcopy_of_model_after_capture_works():
         mha(x, x, x)
     clone = copy.deepcopy(mha)
     np.testing.assert_array_equal(clone(x, x, x)[0].detach().numpy(), mha(x, x, x)[0].detach().numpy())
+
+
+def test_mha_training_with_dropout_is_bit_identical_and_weights_are_pre_dropout():
+    torch.manual_seed(0)
+    layer = nn.TransformerEncoderLayer(16, 2, 32, dropout=0.3, batch_first=True).train()
+    x = torch.randn(2, 6, 16)
+    torch.manual_seed(5)
+    plain = layer(x)
+    torch.manual_seed(5)
+    with attnscope.capture(layer) as cap:
+        seen = layer(x)
+    assert torch.equal(plain, seen)  # same random numbers drawn, same computation
+    rec = cap.attention[0]
+    np.testing.assert_allclose(rec.weights.sum(-1), 1.0, atol=1e-6)  # pre-dropout: rows still sum to 1
+    layer.eval()  # reference: torch's own per-head weights without dropout
+    with torch.no_grad():
+        _, ref = layer.self_attn(x, x, x, need_weights=True, average_attn_weights=False)
+    np.testing.assert_allclose(rec.weights, ref.numpy(), atol=1e-6)

@@ -191,3 +191,35 @@ def test_tap_of_a_softmax_output_refines_the_softmax_record():
     with attnscope.capture(m) as cap:
         m(torch.randn(1, 2, 3, 4), torch.randn(1, 2, 3, 4))
     assert len(cap.attention) == 1 and cap.attention[0].source == "tap" and cap.attention[0].kind == "cross"
+
+
+def test_blocks_named_explicitly_for_a_custom_model():
+    class Mix(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.attn = nn.MultiheadAttention(8, 2, batch_first=True)
+            self.ff = nn.Linear(8, 8)
+
+        def forward(self, x):
+            return x + self.ff(x + self.attn(x, x, x)[0])
+
+    class Net(nn.Module):  # stages in plain attributes: no ModuleList to find blocks from
+        def __init__(self):
+            super().__init__()
+            self.stage_a, self.stage_b = Mix(), Mix()
+
+        def forward(self, x):
+            return self.stage_b(self.stage_a(x))
+
+    torch.manual_seed(0)
+    net = Net()
+    x = torch.randn(2, 3, 8)
+    with attnscope.capture(net) as auto:
+        net(x)
+    assert auto.residual == []
+    with attnscope.capture(net, blocks=["stage_*"]) as cap:
+        out = net(x)
+    assert [r.name for r in cap.residual] == ["stage_a", "stage_b"]
+    np.testing.assert_allclose(cap.residual[1].norms, out.detach().norm(dim=-1).numpy(), rtol=1e-6)  # reference: the output's own norm
+    with pytest.raises(attnscope.OptionError, match="Did you mean 'stage_b', 'stage_a'"):
+        attnscope.capture(net, blocks=["stage_c"])
