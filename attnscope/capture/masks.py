@@ -35,8 +35,9 @@ def causal_allowed(tq: int, tk: int, offset: int = 0) -> torch.Tensor:
 
 
 @functools.lru_cache(maxsize=64)
-def _causal_forbidden(tq: int, tk: int) -> torch.Tensor:
-    return ~causal_allowed(tq, tk)
+def _causal_bias(tq: int, tk: int) -> torch.Tensor:
+    """``(Tq, Tk)`` float32: 0 where allowed, -inf above the diagonal (adding it is cheaper than masked_fill)."""
+    return torch.zeros(tq, tk).masked_fill_(~causal_allowed(tq, tk), float("-inf"))
 
 
 def sdpa_allowed(attn_mask: torch.Tensor | None, is_causal: bool, tq: int, tk: int) -> torch.Tensor | None:
@@ -123,7 +124,7 @@ def sdpa_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | Non
     scores = torch.matmul(q * scale, k.transpose(-2, -1))  # (B, H, Tq, Tk); scaling q is the cheaper side
     masked = is_causal
     if is_causal:
-        scores.masked_fill_(_causal_forbidden(tq, tk), float("-inf"))
+        scores.add_(_causal_bias(tq, tk))
     if attn_mask is not None:
         m = attn_mask.detach()
         if m.dtype == torch.bool:
