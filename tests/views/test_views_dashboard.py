@@ -1,0 +1,261 @@
+"""The notebook dashboard without a browser: construction, linked selection, payload, escaping, degrading."""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+
+import ipywidgets as W
+import numpy as np
+import pytest
+import torch
+import traitlets
+from bokeh.core.json_encoder import serialize_json
+from jupyter_bokeh.widgets import BokehModel
+from torch import nn
+
+import attnscope
+from attnscope.capture import record_sums
+from attnscope.errors import AttnscopeWarning, OptionError
+from attnscope.views import Dashboard, dashboard
+from attnscope.views.scene import CAUTION
+from conftest import HOSTILE, SOURCE, TARGET
+
+
+def figures(board):
+    return {m.name: m for m in board.scene.layout.references() if getattr(m, "name", None)}
+
+
+def test_dashboard_is_a_widget_with_every_view(translator):
+    board = dashboard(translator, tokens={"source": SOURCE, "target": TARGET})
+    assert isinstance(board, W.Widget) and isinstance(board, Dashboard)
+    assert isinstance(board.plot, BokehModel)
+    names = figures(board)
+    assert {"as-atlas", "as-lens", "as-scores", "as-stream", "as-twins", "as-findings", "as-caution"} <= set(names)
+    assert CAUTION in names["as-caution"].text and "Jain & Wallace 2019" in CAUTION
+    # every kept head has a tile: 6 records x 4 heads (nn.Transformer above)
+    assert len(board.scene.atlas_src.data["image"]) == 24
+    assert board.head_choice.options[3][0] == "encoder.layers.0.self_attn · head 3"
+    assert len(repr(board)) < 120
+
+
+def test_self_and_cross_attention_are_told_apart(translator):
+    board = dashboard(translator)
+    cells = board.scene.cells_src.data
+    kinds = {r: k for r, k in zip(cells["record"], cells["kind"])}
+    assert kinds["decoder.layers.0.multihead_attn"] == "cross" and kinds["decoder.layers.0.self_attn"] == "self"
+    edges = {k: {e for e, kk in zip(cells["edge"], cells["kind"]) if kk == k} for k in ("self", "cross")}
+    assert len(edges["self"]) == len(edges["cross"]) == 1 and edges["self"] != edges["cross"]
+    labels = board.scene.atlas_fig.yaxis[0].major_label_overrides
+    assert sum(v.startswith("\u21c4") for v in labels.values()) == 2  # the two cross-attention rows
+
+
+def test_lens_shows_torch_weights_of_the_selected_head(mha_case):
+    cap, ref, _ = mha_case
+    board = dashboard(cap)
+    for item in (0, 1):
+        board.item = item
+        for g in (1, 0):
+            board.head = g
+            # reference: nn.MultiheadAttention(need_weights=True, average_attn_weights=False)
+            np.testing.assert_allclose(board.scene.lens_src.data["image"][0], ref[item, g], atol=1e-6)
+            assert board.scene.lens_mapper.high == pytest.approx(ref[item, g].max(), rel=1e-6)
+
+
+def test_padding_is_veiled(mha_case):
+    cap, _, pad = mha_case
+    board = dashboard(cap, item=1)
+    veil = board.scene.veil_src.data["image"][0]
+    # key_padding_mask True = key forbidden for every query (torch's convention); torch puts no weight there
+    expected = np.broadcast_to(pad[1][None, :], veil.shape).astype(np.uint8)
+    np.testing.assert_array_equal(veil, expected)
+
+
+def test_leaked_mass_is_painted(leaky):
+    board = dashboard(leaky)
+    rec = leaky.attention[0]
+    for g in (0, 1):
+        board.head = g
+        veil = board.scene.veil_src.data["image"][0]
+        # brute force: forbidden (above the diagonal) and carrying weight, from the recorded weights
+        w = rec.weights[0, g]
+        for i in range(6):
+            for j in range(6):
+                want = 0 if j <= i else (2 if w[i, j] > 1e-6 else 1)
+                assert veil[i, j] == want
+        assert "leak 0.4" in board.scene.lens_fig.title.text  # head table leak_mass ≈ 0.44–0.45
+
+
+def test_selecting_a_head_updates_every_linked_view(translator):
+    board = dashboard(translator, tokens={"source": SOURCE, "target": TARGET})
+    s = board.scene
+    before = {k: dict(src.data) for k, src in (("pick", s.pick_src), ("stream", s.stream_pick_src),
+                                                ("twins", s.twin_pick_src))}
+    g = 14  # decoder.layers.0.multihead_attn, head 2 (records of 4 heads in call order)
+    board.head = g
+    h = s.heads[g]
+    assert (h.record, h.head) == (3, 2)
+    assert s.pick_src.data == {"x": [2.5], "y": [3.5]} != before["pick"]
+    assert list(s.cells_src.selected.indices) == [g]
+    assert board.head_choice.value == g
+    assert s.stream_pick_src.data["y"] == [2.5] != before["stream"]["y"]  # block decoder.layers.0
+    assert s.twin_pick_src.data["y"][0] == g + 0.5 != before["twins"]["y"][0]
+    assert s.qlab_src.data["tok"] == TARGET and s.klab_src.data["tok"] == SOURCE  # cross: queries from target
+    assert s.lens_src.data["dh"] == [4] and s.lens_src.data["dw"] == [6]
+    assert (s.lens_fig.x_range.end, s.lens_fig.y_range.start) == (5.5, 3.5)
+    assert "decoder.layers.0.multihead_attn · head 2" in s.lens_fig.title.text
+    assert "cross-attention" in s.lens_fig.title.text
+    assert "head 2" in board.status.value
+
+
+def test_a_tap_in_atlas_or_scores_selects_the_head(translator):
+    board = dashboard(translator)
+    # what jupyter_bokeh does with a browser tap: set the shared cells' selection, firing its callbacks
+    board.scene.cells_src.selected.indices = [9]
+    assert board.head == 9 and board.head_choice.value == 9
+    np.testing.assert_array_equal(board.scene.lens_src.data["image"][0], translator.attention[2].weights[0, 1])
+    board.scene.cells_src.selected.indices = []  # a tap on empty space keeps the selection
+    assert board.head == 9 and list(board.scene.cells_src.selected.indices) == [9]
+
+
+def test_batch_item_chooser_changes_atlas_stream_and_lens(translator):
+    board = dashboard(translator, head=5)
+    rec = translator.attention[1]
+    tiles0 = [t.copy() for t in board.scene.atlas_src.data["image"]]
+    stream0 = board.scene.stream_src.data["image"][0].copy()
+    board.item_choice.value = 1
+    assert board.item == 1
+    np.testing.assert_array_equal(board.scene.lens_src.data["image"][0], rec.weights[1, 1])
+    # T=6 <= tile side: each tile is the map itself, scaled to its own maximum (hand formula)
+    w = translator.attention[0].weights[1, 0]
+    np.testing.assert_array_equal(board.scene.atlas_src.data["image"][0], np.rint(w / w.max() * 254).astype(np.uint8))
+    assert any((a != b).any() for a, b in zip(tiles0, board.scene.atlas_src.data["image"]))
+    np.testing.assert_allclose(board.scene.stream_src.data["image"][0][0], translator.residual[0].norms[1])
+    assert not np.array_equal(stream0, board.scene.stream_src.data["image"][0])
+
+
+def test_statistic_chooser_colours_scores_from_the_head_table(mha_case):
+    cap, ref, pad = mha_case
+    board = dashboard(cap)
+    board.statistic_choice.value = "sink_mass"
+    # reference: mean weight on key 0 over all (item, query) rows, from torch's own weights (key 0 is never padded)
+    np.testing.assert_allclose(board.scene.cells_src.data["score"], ref[:, :, :, 0].mean(axis=(0, 2)), rtol=1e-5)
+    board.statistic = "entropy_ratio"
+    assert board.scene.scores_fig.title.text == "scores: entropy_ratio per head"
+    with pytest.raises(traitlets.TraitError, match="Did you mean 'sink_mass'"):
+        board.statistic = "sink_mas"
+    assert board.statistic == "entropy_ratio"
+
+
+def test_bad_selection_is_refused_and_the_widget_stays_usable(translator):
+    board = dashboard(translator)
+    with pytest.raises(traitlets.TraitError, match="expected 0..23"):
+        board.head = 24
+    board.head = 2
+    assert board.head == 2 and "head 2" in board.status.value
+
+
+def test_a_failing_update_shows_its_error_and_recovers(translator):
+    # a damaged capture: the second record claims 2 batch items but holds the maps of one
+    recs = list(translator.attention)
+    recs[1] = dataclasses.replace(recs[1], weights=recs[1].weights[:1], stats=record_sums(recs[1]))
+    damaged = attnscope.Capture._from_records(recs, list(translator.residual), keep="maps")
+    board = dashboard(damaged)
+    board.item = 1
+    assert "could not show the batch item" in board.problem.value and "IndexError" in board.problem.value
+    assert "item 1" in board.status.value  # finally: the status line still follows the state
+    board.item = 0
+    board.head = 5
+    assert board.problem.value == ""
+    np.testing.assert_array_equal(board.scene.lens_src.data["image"][0], recs[1].weights[0, 1])
+
+
+def test_stats_only_capture_shows_statistics_only():
+    torch.manual_seed(0)
+    mha = nn.MultiheadAttention(8, 2, batch_first=True)
+    x = torch.randn(1, 4, 8)
+    with torch.no_grad(), attnscope.capture(mha, keep="stats") as cap:
+        mha(x, x, x)
+    board = dashboard(cap)
+    assert board.scene.atlas_src.data["image"] == []
+    assert "statistics only" in board.scene.lens_fig.title.text
+    assert "statistics only" in board.scene.twins_fig.title.text
+    np.testing.assert_allclose(board.scene.cells_src.data["score"], cap.head_table()["entropy_ratio"])
+
+
+def test_tokens_are_escaped_in_every_html_piece(translator):
+    board = dashboard(translator, tokens={"source": SOURCE, "target": TARGET},
+                      findings=[("encoder.layers.0.self_attn", 1, HOSTILE)], checks=[{"check": HOSTILE, "ok": True}])
+    htmls = [figures(board)["as-findings"].text, figures(board)["as-caution"].text, board.problem.value]
+    assert all(HOSTILE not in h for h in htmls)
+    assert figures(board)["as-findings"].text.count("&lt;script&gt;") == 2
+    # token strings travel as data (drawn on canvas or set as text by BokehJS), never inside an HTML field
+    board.head = 0
+    assert HOSTILE in board.scene.qlab_src.data["tok"]
+
+
+def test_first_render_payload_stays_small_and_maps_travel_on_selection(translator):
+    board = dashboard(translator)
+    first = board.first_render_bytes()
+    bundle = len(serialize_json(board.plot.render_bundle))
+    assert bundle < first < bundle + 60_000  # the Bokeh document dominates; controls are small
+    assert len(board.scene.lens_src.data["image"]) == 1  # one full map, the selected one
+
+
+@pytest.mark.slow
+def test_twelve_by_twelve_heads_at_256_positions_fit_the_budget():
+    torch.manual_seed(0)
+    layer = nn.TransformerEncoderLayer(48, 12, 96, dropout=0.0, batch_first=True)
+    model = nn.TransformerEncoder(layer, 12, enable_nested_tensor=False).eval()
+    x = torch.randn(1, 256, 48)
+    with torch.no_grad(), attnscope.capture(model) as cap:
+        model(x, mask=nn.Transformer.generate_square_subsequent_mask(256), is_causal=True)
+    board = dashboard(cap, tokens=[f"t{i}" for i in range(256)])
+    sent = board.first_render_bytes()
+    # a naive float JSON of every map, for scale: 144 maps x 65,536 weights
+    naive_one = len(json.dumps(cap.attention[0].weights[0, 0].tolist()))
+    assert sent <= 2_000_000
+    assert 144 * naive_one / sent >= 40
+    assert {t.shape for t in board.scene.atlas_src.data["image"]} == {(24, 24)}
+
+
+def test_very_many_heads_degrade_with_a_warning():
+    torch.manual_seed(0)
+    layer = nn.TransformerEncoderLayer(16, 16, 16, dropout=0.0, batch_first=True)
+    model = nn.TransformerEncoder(layer, 64, enable_nested_tensor=False).eval()
+    x = torch.randn(1, 8, 16)
+    with torch.no_grad(), attnscope.capture(model) as cap:
+        model(x)
+    with pytest.warns(AttnscopeWarning) as seen:
+        board = dashboard(cap)
+    text = " ".join(str(w.message) for w in seen)
+    assert "1024 heads are drawn as 9x9 tiles" in text or "tiles instead of 24x24" in text
+    assert "too many for the distance matrix" in text
+    assert len(board.scene.atlas_src.data["image"]) == 1024
+    assert board.first_render_bytes() < 2_000_000
+    board.head = 1023
+    assert board.scene.pick_src.data == {"x": [15.5], "y": [63.5]}
+
+
+def test_long_maps_are_pooled_in_the_lens_with_a_warning():
+    torch.manual_seed(0)
+    mha = nn.MultiheadAttention(4, 1, batch_first=True)
+    x = torch.randn(1, 2048, 4)
+    with torch.no_grad(), attnscope.capture(mha) as cap:
+        mha(x, x, x)
+    with pytest.warns(AttnscopeWarning, match="pooled to 512 cells"):
+        board = dashboard(cap)
+    assert board.scene.lens_src.data["image"][0].shape == (512, 512)
+    assert board.scene.lens_src.data["dw"] == [2048]  # the axes keep all 2048 positions for zoom and hover
+    # hand-computed: a pooled row covers 4 query rows (mass 4 in all), spread over 512 means of 16 cells: 4/16
+    np.testing.assert_allclose(board.scene.lens_src.data["image"][0].sum(axis=1), 0.25, rtol=1e-3)
+    assert "pooled to 512x512" in board.scene.lens_fig.title.text
+
+
+def test_options_fail_with_suggestions(translator):
+    with pytest.raises(OptionError, match="Did you mean 'sink_mass'"):
+        dashboard(translator, statistic="sinkmass")
+    with pytest.raises(OptionError, match="bokehjs"):
+        dashboard(translator, bokehjs="sometimes")
+    with pytest.raises(OptionError, match="no kept head 9"):
+        dashboard(translator).scene.head_index("encoder.layers.0.self_attn", 9)

@@ -1,0 +1,64 @@
+"""The standalone page without a browser, and the dashboard in a real kernel (nbclient, no browser)."""
+
+from __future__ import annotations
+
+import re
+
+import nbformat
+import numpy as np
+import pytest
+from bokeh.embed import file_html  # noqa: F401  (the page must not need anything else)
+from nbclient import NotebookClient
+from nbformat.v4 import new_code_cell
+
+import attnscope
+from attnscope.errors import AttnscopeWarning
+from attnscope.views import export_html
+from attnscope.views.page import _vaults
+from attnscope.views.scene import CAUTION, Scene
+from conftest import HOSTILE, SOURCE, TARGET
+import views_notebooks
+
+
+def test_page_is_self_contained_and_escaped(translator, tmp_path):
+    path = export_html(translator, tmp_path / "heads.html", tokens={"source": SOURCE, "target": TARGET},
+                       findings=[("encoder.layers.0.self_attn", 1, HOSTILE)], title=HOSTILE)
+    html = path.read_text(encoding="utf-8")
+    assert "cdn.bokeh.org" not in html and not re.search(r"<script[^>]+src=", html)
+    assert HOSTILE not in html
+    assert "Bokeh" in html and "3.9" in html  # BokehJS is inlined
+    assert "Jain &amp; Wallace 2019" in html or "Jain & Wallace 2019" in html
+    assert CAUTION.split(":")[0] in html
+
+
+def test_page_stores_every_map_within_half_a_code_step(translator):
+    scene = Scene(translator)
+    v = _vaults(scene)["vault"].data
+    assert len(v["image"]) == scene.batch * len(scene.heads)
+    for item in range(scene.batch):
+        for h in scene.heads:
+            idx = item * len(scene.heads) + h.g
+            w = translator.attention[h.record].weights[item, h.slot]
+            # uint16 codes: weight ≈ code * scale, at most half a step off
+            assert np.abs(v["image"][idx] * v["scale"][idx] - w).max() <= v["scale"][idx] / 2 + 1e-9
+
+
+def test_page_pools_maps_past_its_byte_budget(translator, tmp_path):
+    with pytest.warns(AttnscopeWarning, match="pooled to"):
+        export_html(translator, tmp_path / "small.html", max_bytes=2_000)
+
+
+@pytest.mark.slow
+def test_dashboard_in_a_real_kernel_brings_bokehjs_itself(tmp_path):
+    """nbclient runs the notebook without any set-up cell: the first output is the BokehJS loader."""
+    nb = nbformat.read(views_notebooks.write(tmp_path / "d.ipynb", views_notebooks.TRANSLATOR), as_version=4)
+    nb.cells.append(new_code_cell("board.head = 9\nprint(board.status.value)"))
+    NotebookClient(nb, timeout=180, kernel_name="python3", resources={"metadata": {"path": str(tmp_path)}}).execute()
+    outputs = nb.cells[0].outputs
+    js = outputs[0]["data"]["application/javascript"]
+    assert 'root.Bokeh.version === version' in js and attnscope.__name__ not in js[:200]
+    assert outputs[0]["data"]["application/vnd.bokehjs_load.v0+json"] == js
+    assert "application/vnd.jupyter.widget-view+json" in outputs[1]["data"]
+    assert nb.cells[1].outputs[0]["text"].startswith("showing decoder.layers.0.self_attn · head 1")
+    state = nb.metadata["widgets"]["application/vnd.jupyter.widget-state+json"]["state"]
+    assert {"BokehModel", "DropdownModel", "VBoxModel"} <= {m["model_name"] for m in state.values()}
