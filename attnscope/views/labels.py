@@ -41,9 +41,9 @@ def _is_str_list(x: Any) -> bool:
 
 
 def _per_item(given: Any, what: str) -> list[list[str]] | list[str]:
-    """A givenuence given as list of str (all items) or list of lists of str (one per item)."""
-    if _is_str_given:
-        return given
+    """A sequence given as list of str (all items) or list of lists of str (one per item)."""
+    if _is_str_list(given):
+        return list(given)
     if isinstance(given, (list, tuple)) and all(_is_str_list(s) for s in given):
         return [list(s) for s in given]
     raise OptionError(f"{what}: expected a list of str or a list of lists of str, received {type(given).__name__}"
