@@ -69,6 +69,11 @@ class HeadSums:
             raise ShapeError(f"cannot merge statistics of {self.heads} heads with statistics of {other.heads} heads")
         return HeadSums(**{f.name: getattr(self, f.name) + getattr(other, f.name) for f in fields(self)})
 
+    @classmethod
+    def concat(cls, parts: list[HeadSums]) -> HeadSums:
+        """Sums of disjoint groups of heads, joined along the head axis in the given order."""
+        return cls(**{f.name: np.concatenate([getattr(p, f.name) for p in parts]) for f in fields(cls)})
+
     def means(self) -> dict[str, np.ndarray]:
         """Per-head means, keyed by :data:`STAT_COLUMNS`; NaN where no row was counted."""
         with np.errstate(invalid="ignore", divide="ignore"):

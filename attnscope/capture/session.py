@@ -44,7 +44,7 @@ __all__ = ["Capture", "capture", "tap"]
 
 KEEP_MODES = ("maps", "stats")
 DEFAULT_MAX_BYTES = 2 * 1024**3  # 2 GiB of kept maps
-_STATS_CHUNK_BYTES = 64 * 1024**2  # keep="stats" never builds more than this much of a map at once
+_STATS_CHUNK_BYTES = 4 * 1024**2  # keep="stats" never builds more than this much of a map at once
 
 _SOFTMAX_FUNCS = {F.softmax, torch.softmax, torch.Tensor.softmax, torch.special.softmax}
 _MHA_SIGNATURE = inspect.signature(F.multi_head_attention_forward)
@@ -361,12 +361,15 @@ class Capture:
         allowed = masks.compact(masks.sdpa_allowed(mask4, is_causal, tq, tk), (b, hq, tq, tk))
         heads = self._kept_heads(hq, frame.name)
 
-        def compute(sl: slice) -> torch.Tensor:
+        rep = hq // k4.shape[1] if p.get("enable_gqa", False) else 1
+
+        def compute(sl: slice, hs: list[int]) -> torch.Tensor:
             m = mask4
-            if m is not None and m.dim() == 4 and m.shape[0] == b:
-                m = m[sl]
-            return masks.sdpa_weights(q4[sl], k4[sl], m, is_causal, p.get("scale"),
-                                      bool(p.get("enable_gqa", False)))[:, list(heads)]
+            if m is not None and m.dim() == 4:
+                m = m[sl] if m.shape[0] == b else m
+                m = m[:, hs] if m.shape[1] == hq else m
+            kh = [h // rep for h in hs] if k4.shape[1] > 1 else [0]
+            return masks.sdpa_weights(q4[sl][:, hs], k4[sl][:, kh], m, is_causal, p.get("scale"))
 
         causal = is_causal or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset))
         self._record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, "sdpa", offset, compute)
@@ -410,7 +413,7 @@ class Capture:
         heads = self._kept_heads(h, frame.name)
         causal = bool(a["is_causal"]) or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, 0))
         self._record(frame, kind, (b, h, tq, tk), heads, allowed, causal, "mha", 0,
-                     lambda sl: w4[sl][:, list(heads)].float().clone())
+                     lambda sl, hs: w4[sl][:, hs].float().clone())
 
     def _on_softmax(self, func, args, kwargs):
         out = func(*args, **kwargs)
@@ -430,7 +433,7 @@ class Capture:
         causal = kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset)
         w = out.detach()
         index = self._record(frame, kind, (b, h, tq, tk), heads, allowed, causal, "softmax", offset,
-                             lambda sl: w[sl][:, list(heads)].float().clone())
+                             lambda sl, hs: w[sl][:, hs].float().clone())
         frame.last_softmax = (out, index)
         return out
 
@@ -463,7 +466,7 @@ class Capture:
         if frame.last_softmax is not None and frame.last_softmax[0] is weights:
             replace_at = frame.last_softmax[1]  # the same tensor the softmax produced: tap refines that record
         self._record(frame, kind, (b, h, tq, tk), heads, allowed4, bool(causal), "tap", offset,
-                     lambda sl: w[sl][:, list(heads)].float().clone(), replace_at=replace_at)
+                     lambda sl, hs: w[sl][:, hs].float().clone(), replace_at=replace_at)
 
     # ---------------------------------------------------------------- making records
     def _kept_heads(self, h: int, name: str) -> tuple[int, ...]:
@@ -488,18 +491,13 @@ class Capture:
                     f"bring the capture to {_mb(self._c.kept_bytes + size)}, over its budget of {_mb(self.max_bytes)}. "
                     "Use keep='stats' (per-head statistics only), select fewer layers=/heads=, a smaller batch, "
                     "or raise max_bytes=.")
-            weights = compute(slice(None))
+            weights = compute(slice(None), list(heads))
             stats = None
             kept = weights.numpy()
             if replace_at is None:
                 self._c.kept_bytes += size
         else:
-            step = max(1, _STATS_CHUNK_BYTES // max(per_item, 1))
-            stats = HeadSums.zeros(len(heads))
-            for start in range(0, b, step):
-                sl = slice(start, min(b, start + step))
-                a = allowed if allowed is None or allowed.shape[0] == 1 else allowed[sl]
-                stats = stats.merge(head_sums(compute(sl), a, offset))
+            stats = self._reduce(compute, b, heads, allowed, offset, tq * tk * 4)
             kept = None
         allowed_np = None if allowed is None else allowed.numpy().copy()
         index = self._c.calls if replace_at is None else self.attention[replace_at].call
@@ -513,6 +511,28 @@ class Capture:
             return len(self.attention) - 1
         self.attention[replace_at] = record
         return replace_at
+
+    @staticmethod
+    def _reduce(compute, b: int, heads: tuple[int, ...], allowed: torch.Tensor | None, offset: int,
+                map_bytes: int) -> HeadSums:
+        """keep="stats": reduce a call to per-head sums, building at most ``_STATS_CHUNK_BYTES`` of map at once."""
+        per_item = len(heads) * map_bytes
+        b_step = max(1, _STATS_CHUNK_BYTES // max(per_item, 1))
+        h_step = len(heads) if b_step > 1 else max(1, min(len(heads), _STATS_CHUNK_BYTES // max(map_bytes, 1)))
+        groups = []
+        for h0 in range(0, len(heads), h_step):
+            positions = list(range(h0, min(len(heads), h0 + h_step)))
+            hs = [heads[i] for i in positions]
+            sums = HeadSums.zeros(len(hs))
+            for start in range(0, b, b_step):
+                sl = slice(start, min(b, start + b_step))
+                a = allowed
+                if a is not None:
+                    a = a if a.shape[0] == 1 else a[sl]
+                    a = a[:, positions] if a.shape[1] > 1 else a
+                sums = sums.merge(head_sums(compute(sl, hs), a, offset))
+            groups.append(sums)
+        return groups[0] if len(groups) == 1 else HeadSums.concat(groups)
 
     def _record_residual(self, name: str, output: Any) -> None:
         out = _first_tensor(output)

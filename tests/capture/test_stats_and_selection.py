@@ -223,3 +223,22 @@ def test_blocks_named_explicitly_for_a_custom_model():
     np.testing.assert_allclose(cap.residual[1].norms, out.detach().norm(dim=-1).numpy(), rtol=1e-6)  # reference: the output's own norm
     with pytest.raises(attnscope.OptionError, match="Did you mean 'stage_b', 'stage_a'"):
         attnscope.capture(net, blocks=["stage_c"])
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("heads", [None, [0, 2, 3]])
+def test_stats_mode_reduces_large_calls_in_chunks_and_still_equals_maps(heads):
+    """A call bigger than the stats chunk (3 x 4 x 600 x 600 float32 = 17 MB) is reduced in head/batch pieces."""
+    torch.manual_seed(0)
+    mha = nn.MultiheadAttention(16, 4, batch_first=True).eval()
+    x = torch.randn(3, 600, 16)
+    pad = torch.zeros(3, 600, dtype=torch.bool)
+    pad[1, 400:] = True
+    results = {}
+    for keep in ("maps", "stats"):
+        with torch.no_grad(), attnscope.capture(mha, keep=keep, heads=heads) as cap:
+            mha(x, x, x, key_padding_mask=pad, attn_mask=torch.ones(600, 600, dtype=torch.bool).triu(1))
+        results[keep] = cap.head_table()
+    cols = ["rows", "entropy", "entropy_ratio", "max_weight", "sink_mass", "mean_distance", "leak_mass"]
+    np.testing.assert_allclose(results["maps"][cols].to_numpy(), results["stats"][cols].to_numpy(), atol=1e-5)
+    assert list(results["stats"]["head"]) == (heads or [0, 1, 2, 3])
