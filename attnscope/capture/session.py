@@ -72,6 +72,22 @@ def name_matches(name: str, pattern: str) -> bool:
 
 _active_lock = threading.Lock()
 _active: list[Capture] = []  # open captures, for tap()
+_fastpath_state = {"holders": 0, "saved": True}  # the MHA fast path stays off while any capture is open
+
+
+def _fastpath_hold() -> None:
+    with _active_lock:
+        if _fastpath_state["holders"] == 0:
+            _fastpath_state["saved"] = torch.backends.mha.get_fastpath_enabled()
+            torch.backends.mha.set_fastpath_enabled(False)
+        _fastpath_state["holders"] += 1
+
+
+def _fastpath_release() -> None:
+    with _active_lock:
+        _fastpath_state["holders"] -= 1
+        if _fastpath_state["holders"] == 0:
+            torch.backends.mha.set_fastpath_enabled(_fastpath_state["saved"])
 
 
 @dataclass
@@ -91,6 +107,7 @@ class _Counters:
     calls: int = 0
     blocks: int = 0
     kept_bytes: int = 0
+    foreign: int = 0
     ran: set[str] = field(default_factory=set)
     recorded_in: set[str] = field(default_factory=set)
 
@@ -131,6 +148,11 @@ class Capture:
                 "capture() cannot see inside a TorchScript module: its forward runs in the TorchScript "
                 "interpreter, where no hook or torch function mode is called. Capture the eager module "
                 "before torch.jit.script/trace.")
+        if type(model).__name__ == "OptimizedModule" and hasattr(model, "_orig_mod"):
+            raise UnsupportedModelError(
+                "capture() cannot see inside a torch.compile'd module: the compiled graph runs without the Python "
+                "hooks and torch function mode capture relies on. Capture the original module instead: "
+                "attnscope.capture(model._orig_mod) and call model._orig_mod(...) inside the block.")
         if keep not in KEEP_MODES:
             raise OptionError(f"keep must be 'maps' or 'stats'; received {keep!r}.{suggest(str(keep), KEEP_MODES)}")
         if not isinstance(max_bytes, int) or max_bytes <= 0:
@@ -157,7 +179,8 @@ class Capture:
         self._c = _Counters()
         self._handles: list[Any] = []
         self._mode: _Interceptor | None = None
-        self._fastpath: bool | None = None
+        self._fastpath = False  # whether this capture holds the fast-path switch off
+        self._thread: int | None = None
         self._table: Any = None
 
     # ---------------------------------------------------------------- options, checked at the door
@@ -225,15 +248,16 @@ class Capture:
     def __enter__(self) -> Capture:
         if self._state != "new":
             raise CaptureStateError("this capture was already used; make a new one with attnscope.capture(model)")
-        if any(p.is_meta for p in self._model.parameters()):
+        if any(t.is_meta for t in [*self._model.parameters(), *self._model.buffers()]):
             raise UnsupportedModelError("the model's parameters are on the meta device: there is nothing to "
                                         "compute attention from. Load real weights (model.to_empty + load_state_dict) first.")
         self._state = "open"
+        self._thread = threading.get_ident()
         try:
-            self._fastpath = torch.backends.mha.get_fastpath_enabled()
             # The fused fast paths of nn.MultiheadAttention / nn.TransformerEncoder(Layer) run in C++ and would
             # hide the attention (and consume padding masks via nested tensors); the Python path computes the same.
-            torch.backends.mha.set_fastpath_enabled(False)
+            _fastpath_hold()
+            self._fastpath = True
             blocks = set(self._blocks)
             for name, module in self._model.named_modules():
                 self._handles.append(module.register_forward_pre_hook(self._pre_hook(name), with_kwargs=True))
@@ -262,17 +286,21 @@ class Capture:
                     _active.remove(self)
             if self._mode is not None:
                 mode, self._mode = self._mode, None
-                mode.__exit__(None, None, None)
+                _remove_mode(mode)
         finally:
             for h in self._handles:
                 h.remove()
             self._handles.clear()
-            if self._fastpath is not None:
-                torch.backends.mha.set_fastpath_enabled(self._fastpath)
-                self._fastpath = None
+            if self._fastpath:
+                self._fastpath = False
+                _fastpath_release()
             self._state = "closed"
 
     def _finish(self) -> None:
+        if self._c.foreign:
+            warnings.warn(f"{self._c.foreign} module calls of the model ran on another thread than the one that "
+                          "opened the capture and were not recorded; run the forward on the capturing thread, or "
+                          "open a capture in each thread", AttnscopeWarning, stacklevel=3)
         if not self.attention:
             ran = sorted(self._c.ran)
             raise NoAttentionError(
@@ -296,6 +324,9 @@ class Capture:
 
     def _pre_hook(self, name: str):
         def hook(module: nn.Module, args: tuple, kwargs: dict):
+            if threading.get_ident() != self._thread:
+                self._c.foreign += 1  # the torch function mode is per thread: this call cannot be seen
+                return None
             stack = self._stack()
             selected = (self._selected is None or name in self._selected
                         or bool(stack and stack[-1].selected and self._selected is not None))
@@ -307,6 +338,8 @@ class Capture:
 
     def _post_hook(self, name: str, is_block: bool):
         def hook(module: nn.Module, args: tuple, output: Any):
+            if threading.get_ident() != self._thread:
+                return None
             stack = self._stack()
             while stack:  # always_call=True: also runs when forward raised, so the stack stays balanced
                 frame = stack.pop()
@@ -604,6 +637,24 @@ def head_table(records: Sequence[AttentionRecord]):
             rows.append(row)
     columns = ["name", "kind", "call", "head", "rows", *STAT_COLUMNS, "nonfinite_rows"]
     return pd.DataFrame(rows, columns=columns)
+
+
+def _remove_mode(mode: TorchFunctionMode) -> None:
+    """Take *mode* off this thread's torch function mode stack, wherever it is, keeping the others in order.
+
+    Captures are usually closed in the reverse order of opening, but a generator closed late or a block
+    exited out of order must not pop somebody else's mode.
+    """
+    above = []
+    try:
+        while torch._C._len_torch_function_stack() > 0:
+            top = torch._C._pop_torch_function_stack()
+            if top is mode:
+                break
+            above.append(top)
+    finally:
+        for other in reversed(above):
+            torch._C._push_on_torch_function_stack(other)
 
 
 def _as_4d(t: torch.Tensor) -> torch.Tensor:
