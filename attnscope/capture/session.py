@@ -668,15 +668,20 @@ def _as_4d(t: torch.Tensor) -> torch.Tensor:
 
 
 def _first_tensor(output: Any) -> torch.Tensor | None:
+    """The hidden state in a block's output: the tensor itself, or the first one in nested tuples, lists, dicts."""
     if isinstance(output, torch.Tensor):
         return output
-    if isinstance(output, (tuple, list)) and output:
-        return _first_tensor(output[0])
     if isinstance(output, Mapping):
-        for key in ("last_hidden_state", "hidden_states"):
-            if key in output and isinstance(output[key], torch.Tensor):
-                return output[key]
-        return next((v for v in output.values() if isinstance(v, torch.Tensor)), None)
+        preferred = [output[k] for k in ("last_hidden_state", "hidden_states") if k in output]
+        items = preferred + list(output.values())
+    elif isinstance(output, (tuple, list)):
+        items = list(output)
+    else:
+        return None
+    for item in items:
+        found = _first_tensor(item)
+        if found is not None:
+            return found
     return None
 
 
