@@ -47,7 +47,8 @@ from torch.overrides import TorchFunctionMode
 from attnscope.capture.discovery import map_model
 from attnscope.errors import NoAttentionError, OptionError, UnsupportedModelError, suggest
 
-__all__ = ["HeadAblation", "HeadIntervention", "ablate", "ablation_change", "head_importance", "head_means"]
+__all__ = ["AttentionCall", "HeadAblation", "HeadIntervention", "ablate", "ablation_change", "head_importance",
+           "head_means", "observe_heads"]
 
 ABLATION_MODES = ("zero", "mean")
 
@@ -329,7 +330,8 @@ def _parse_heads(model: nn.Module, heads: HeadSpec) -> dict[str, set[int]]:
         try:
             name, hs = item
         except (TypeError, ValueError):
-            raise OptionError(f"heads= takes (module name, head) pairs or {{name: [heads]}}; received {item!r}") from None
+            raise OptionError("heads= takes (module name, head) pairs or {name: [heads]}; "
+                              f"received {item!r}") from None
         if not isinstance(name, str):
             raise OptionError(f"heads= takes (module name, head) pairs; received the name {name!r}")
         if name not in names:
@@ -449,11 +451,25 @@ def head_means(model: nn.Module, *args: Any, **kwargs: Any) -> dict[tuple[str, i
             s, n = sums.get((call.name, j), (torch.zeros(dh, dtype=torch.float64), 0))
             sums[(call.name, j)] = (s + total[j], n + b * tq)
 
-    _run_observed(model, observe, lambda: model(*args, **kwargs))
+    observe_heads(model, observe, lambda: model(*args, **kwargs))
     return {key: (s / max(n, 1)).float() for key, (s, n) in sums.items()}
 
 
-def _run_observed(model: nn.Module, observe: Observe, fn: Callable[[], Any]) -> Any:
+def observe_heads(model: nn.Module, observe: Observe, fn: Callable[[], Any]) -> Any:
+    """Run ``fn()`` once in eval mode without gradients, handing every attention call's head outputs to *observe*.
+
+    >>> import torch
+    >>> mha = torch.nn.MultiheadAttention(8, 2, batch_first=True)
+    >>> x = torch.randn(1, 3, 8)
+    >>> shapes = []
+    >>> _ = observe_heads(mha, lambda call, out: shapes.append(tuple(out.shape)), lambda: mha(x, x, x))
+    >>> shapes                                         # (B, H, Tq, Dh)
+    [(1, 2, 3, 4)]
+
+    ``observe(call, per_head)`` gets an :class:`AttentionCall` and the detached ``(B, H, Tq, Dh)`` outputs.
+    Returns what ``fn`` returned; the model's mode is restored. Raises
+    :class:`~attnscope.errors.NoAttentionError` when ``fn`` ran no attention call.
+    """
     training = model.training
     try:
         model.eval()
@@ -560,7 +576,7 @@ def head_importance(model: nn.Module, fn: Callable[[], Any], *, heads: HeadSpec 
                 s, n = sums.get((call.name, j), (torch.zeros(dh, dtype=torch.float64), 0))
                 sums[(call.name, j)] = (s + total[j], n + b * tq)
 
-    base = _measure(_run_observed(model, observe, fn))
+    base = _measure(observe_heads(model, observe, fn))
     if want_means:
         means = {key: (s / max(n, 1)).float() for key, (s, n) in sums.items()}
     chosen = list(order) if heads is None else [(n, h) for n, hs in _parse_heads(model, heads).items()

@@ -42,10 +42,9 @@ import pandas as pd
 import torch
 from torch import nn
 
-from attnscope.analyses.ablation import AttentionCall, _run_observed
+from attnscope.analyses.ablation import AttentionCall, observe_heads
 from attnscope.analyses.similarity import head_distances
 from attnscope.capture import record_sums
-from attnscope.capture.discovery import map_model
 from attnscope.errors import OptionError, ShapeError, UnsupportedModelError, suggest
 from attnscope.records import AttentionRecord, HeadSums
 
@@ -233,7 +232,7 @@ def head_output_norms(model: nn.Module, *args: Any, out_proj: Mapping[str, str] 
             rows.append({"name": call.name, "call": call.index, "head": j, "norm": float(norm[j]),
                          "relative": float(norm[j]) / mean if mean > 0 else 0.0})
 
-    _run_observed(model, observe, lambda: model(*args, **kwargs))
+    observe_heads(model, observe, lambda: model(*args, **kwargs))
     return pd.DataFrame(rows, columns=["name", "call", "head", "norm", "relative"])
 
 

@@ -137,7 +137,8 @@ def test_sdpa_zero_and_mean_ablation_equal_weight_surgery():
     # brute force: the head's output α·v of layer 0, head 1, from a recomputed causal softmax
     attn = net.layers[0]
     q, k, v = attn.qkv(x).view(2, 7, 3, H, DH).permute(2, 0, 3, 1, 4)
-    scores = (q @ k.transpose(-2, -1) / math.sqrt(DH)).masked_fill(torch.ones(7, 7, dtype=torch.bool).triu(1), -math.inf)
+    future = torch.ones(7, 7, dtype=torch.bool).triu(1)
+    scores = (q @ k.transpose(-2, -1) / math.sqrt(DH)).masked_fill(future, -math.inf)
     head1 = (torch.softmax(scores, -1) @ v)[:, 1]  # (B, T, dh)
     torch.testing.assert_close(means[("layers.0", 1)], head1.mean(dim=(0, 1)).detach(), atol=1e-5, rtol=1e-5)
     with ablate(net, [("layers.0", 1)], mode="mean", means=means):
