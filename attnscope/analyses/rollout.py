@@ -48,7 +48,8 @@ def rollout_records(cap: Any, layers: str | Sequence[str] | None = None) -> list
                          f"found none among {len(records)} records")
     missing = [r.name for r in chosen if r.weights is None]
     if missing:
-        raise ShapeError(f"rollout needs attention maps; '{missing[0]}' kept statistics only (capture with keep='maps')")
+        raise ShapeError(f"rollout needs attention maps; '{missing[0]}' kept statistics only "
+                         "(capture with keep='maps')")
     first = chosen[0]
     for r in chosen[1:]:
         if r.weights.shape[0] != first.weights.shape[0] or r.queries != first.queries:
