@@ -106,7 +106,8 @@ def test_merge_of_parts_equals_the_whole_and_memory_does_not_grow(parts):
     _, ns = parts
     model, batches = ns["build"](), ns["data"]()
     whole = aggregate_heads(model, batches, progress=False)
-    merged = aggregate_heads(model, batches[:2], progress=False).merge(aggregate_heads(model, batches[2:], progress=False))
+    first, rest = (aggregate_heads(model, part, progress=False) for part in (batches[:2], batches[2:]))
+    merged = first.merge(rest)
     for name in whole.names:
         for field, value in whole.sums[name].as_arrays().items():
             np.testing.assert_allclose(merged.sums[name].as_arrays()[field], value, rtol=1e-12)
