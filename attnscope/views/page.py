@@ -45,8 +45,7 @@ function show(g, item) {
   const L = vault.data;
   const tq = L.tq[idx], tk = L.tk[idx];
   const geom = {x: [-0.5], y: [-0.5], dw: [tk], dh: [tq]};
-  lens.data = Object.assign({image: [L.image[idx]], scale: [L.scale[idx]]}, geom);
-  veil.data = Object.assign({image: [L.veil[idx]]}, geom);
+  lens.data = Object.assign({image: [L.image[idx]], veil: [L.veil[idx]], scale: [L.scale[idx]]}, geom);
   const li = item * R + L.record[idx];
   qlab.data = {tok: names.data.q[li]};
   klab.data = {tok: names.data.k[li]};
@@ -186,7 +185,7 @@ def export_html(cap: Any, path: str | os.PathLike, tokens: Any = None, *, ids: A
     stat_select = Select(title="scores", options=[s for s in STATISTICS if s in scene.scores.columns],
                          value=scene.statistic, width=200, name="as-stat-select")
     veil_box = CheckboxGroup(labels=["mask veil (grey: forbidden, magenta: leak)"], active=[0], name="as-veil-box")
-    args = dict(cells=scene.cells_src, lens=scene.lens_src, veil=scene.veil_src, qlab=scene.qlab_src,
+    args = dict(cells=scene.cells_src, lens=scene.lens_src, qlab=scene.qlab_src,
                 klab=scene.klab_src, mapper=scene.lens_mapper, lens_fig=scene.lens_fig, pick=scene.pick_src,
                 stream_pick=scene.stream_pick_src, twin_pick=scene.twin_pick_src, has_twins=scene.distances is not None,
                 head_select=head_select, item_select=item_select, atlas=scene.atlas_src, stream=scene.stream_src,

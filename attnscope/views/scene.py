@@ -304,8 +304,9 @@ class Scene:
         # ---- lens + veil
         self.qlab_src = ColumnDataSource(dict(tok=[]), name="as-qlab")
         self.klab_src = ColumnDataSource(dict(tok=[]), name="as-klab")
-        self.lens_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[], scale=[]), name="as-lens-src")
-        self.veil_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]), name="as-veil-src")
+        # one source for map and veil: a selection is one data change (one message to the browser)
+        self.lens_src = ColumnDataSource(dict(image=[], veil=[], x=[], y=[], dw=[], dh=[], scale=[]),
+                                         name="as-lens-src")
         self.lens_mapper = LinearColorMapper(palette=WEIGHT_PALETTE, low=0, high=1, nan_color=BACKGROUND)
         self.lens_fig = figure(name="as-lens", title="lens", width=600, height=600,
                                x_range=Range1d(-0.5, 0.5), y_range=Range1d(0.5, -0.5),
@@ -313,7 +314,7 @@ class Scene:
                                background_fill_color=BACKGROUND)
         img = self.lens_fig.image(image="image", x="x", y="y", dw="dw", dh="dh", source=self.lens_src,
                                   color_mapper=self.lens_mapper, name="as-lens-image")
-        self.veil = self.lens_fig.image(image="image", x="x", y="y", dw="dw", dh="dh", source=self.veil_src,
+        self.veil = self.lens_fig.image(image="veil", x="x", y="y", dw="dw", dh="dh", source=self.lens_src,
                                         color_mapper=LinearColorMapper(palette=VEIL_PALETTE, low=0, high=2),
                                         name="as-veil")
         for axis, src, label in ((self.lens_fig.xaxis, self.klab_src, "key"),
@@ -462,18 +463,20 @@ class Scene:
             self.set_item(item)
         self.g = g
         a = self.lens_arrays(g, self.item)
-        self.qlab_src.data = dict(tok=a["q"])
-        self.klab_src.data = dict(tok=a["k"])
-        geom = dict(x=[-0.5], y=[-0.5], dw=[a["tk"]], dh=[a["tq"]])
-        self.lens_src.data = dict(image=[a["image"]], scale=[1.0], **geom)
-        self.veil_src.data = dict(image=[a["veil"]], **geom)
+        # only what changed is assigned: each assignment is one message to the browser
+        for src, tok in ((self.qlab_src, a["q"]), (self.klab_src, a["k"])):
+            if list(src.data["tok"]) != tok:
+                src.data = dict(tok=tok)
+        self.lens_src.data = dict(image=[a["image"]], veil=[a["veil"]], scale=[1.0], x=[-0.5], y=[-0.5],
+                                  dw=[a["tk"]], dh=[a["tq"]])
         self.lens_mapper.high = a["top"]
         self._frame_lens(a["tq"], a["tk"])
         self.lens_fig.title.text = a["title"]
         m = self.marks(g)
-        self.pick_src.data = m["pick"]
-        self.stream_pick_src.data = m["stream"]
-        self.twin_pick_src.data = m["twins"]
+        for src, data in ((self.pick_src, m["pick"]), (self.stream_pick_src, m["stream"]),
+                          (self.twin_pick_src, m["twins"])):
+            if {k: list(v) for k, v in src.data.items()} != data:
+                src.data = data
         if list(self.cells_src.selected.indices) != [g]:
             self.cells_src.selected.indices = [g]
 
@@ -484,19 +487,31 @@ class Scene:
             yr.update(start=tq - 0.5, end=-0.5, bounds=(-0.5, tq - 0.5))
 
     def atlas_data(self, item: int) -> dict[str, list]:
-        """Pooled, quantised tiles of every head with maps, for batch item *item*."""
-        data: dict[str, list] = dict(image=[], x=[], y=[], dw=[], dh=[])
+        """All heads of batch item *item* as one mosaic image: each head a ``tile x tile`` block of uint8 codes.
+
+        One image (not one per head) keeps the document small and quick to draw. Each block is the head's map
+        pooled to at most ``tile`` cells a side, scaled to its own maximum and repeated up to the block size;
+        one background row and column (code 255) separate neighbouring blocks.
+        """
+        side, n_rec = self.tile, len(self.records)
+        width = max(len(r.heads) for r in self.records)
+        step = side + 1
+        mosaic = np.full((n_rec * step, width * step), TILE_TOP + 1, dtype=np.uint8)
         for h in self.heads:
             rec = self.records[h.record]
             if rec.weights is None:
                 continue
-            tile = quantise_tile(pool(rec.weights[min(item, rec.batch - 1), h.slot], self.tile))
-            data["image"].append(tile)
-            data["x"].append(h.slot + 0.04)
-            data["y"].append(h.record + 0.04)
-            data["dw"].append(0.92)
-            data["dh"].append(0.92)
-        return data
+            tile = quantise_tile(pool(rec.weights[min(item, rec.batch - 1), h.slot], side))
+            rows = np.arange(side) * tile.shape[0] // side  # nearest cell of the pooled tile for each pixel
+            cols = np.arange(side) * tile.shape[1] // side
+            r0, c0 = h.record * step, h.slot * step
+            mosaic[r0:r0 + side, c0:c0 + side] = tile[rows[:, None], cols[None, :]]
+        return dict(image=[mosaic], x=[0], y=[0], dw=[width], dh=[n_rec])
+
+    def tile_of(self, mosaic: np.ndarray, g: int) -> np.ndarray:
+        """The ``tile x tile`` block of head *g* in an atlas mosaic."""
+        h, step = self.heads[g], self.tile + 1
+        return mosaic[h.record * step:h.record * step + self.tile, h.slot * step:h.slot * step + self.tile]
 
     def stream_data(self, item: int) -> tuple[dict[str, list], float, float]:
         """Residual norms of every block for batch item *item*, and their range for the colour bar."""

@@ -78,18 +78,15 @@ def jupyter_lab(workdir: Path, timeout: float = 90.0) -> Iterator[dict[str, Any]
 
 
 @contextlib.contextmanager
-def chromium(profile: Path, **viewport: int) -> Iterator[Any]:
-    """A headless Debian Chromium context (fresh profile) driven by playwright."""
-    from playwright.sync_api import sync_playwright
-
-    with sync_playwright() as p:
-        ctx = p.chromium.launch_persistent_context(
-            str(profile), executable_path=CHROMIUM, args=CHROMIUM_ARGS, headless=True,
-            viewport={"width": viewport.get("width", 1500), "height": viewport.get("height", 1100)})
-        try:
-            yield ctx
-        finally:
-            ctx.close()
+def chromium(playwright: Any, profile: Path, **viewport: int) -> Iterator[Any]:
+    """A headless Debian Chromium context with a fresh profile (one ``sync_playwright()`` serves them all)."""
+    ctx = playwright.chromium.launch_persistent_context(
+        str(profile), executable_path=CHROMIUM, args=CHROMIUM_ARGS, headless=True,
+        viewport={"width": viewport.get("width", 1500), "height": viewport.get("height", 1100)})
+    try:
+        yield ctx
+    finally:
+        ctx.close()
 
 
 def open_notebook(page: Any, lab: dict[str, Any], name: str, timeout_ms: int = 60_000) -> None:

@@ -33,8 +33,10 @@ def test_dashboard_is_a_widget_with_every_view(translator):
     names = figures(board)
     assert {"as-atlas", "as-lens", "as-scores", "as-stream", "as-twins", "as-findings", "as-caution"} <= set(names)
     assert CAUTION in names["as-caution"].text and "Jain & Wallace 2019" in CAUTION
-    # every kept head has a tile: 6 records x 4 heads (nn.Transformer above)
-    assert len(board.scene.atlas_src.data["image"]) == 24
+    # every kept head has a tile in the one mosaic: 6 records x 4 heads (nn.Transformer above), 24 + 1 pixels each
+    (mosaic,) = board.scene.atlas_src.data["image"]
+    assert mosaic.shape == (6 * 25, 4 * 25) and mosaic.dtype == np.uint8
+    assert (mosaic[24::25, :] == 255).all() and (mosaic[:, 24::25] == 255).all()  # background between tiles
     assert board.head_choice.options[3][0] == "encoder.layers.0.self_attn · head 3"
     assert len(repr(board)) < 120
 
@@ -65,7 +67,7 @@ def test_lens_shows_torch_weights_of_the_selected_head(mha_case):
 def test_padding_is_veiled(mha_case):
     cap, _, pad = mha_case
     board = dashboard(cap, item=1)
-    veil = board.scene.veil_src.data["image"][0]
+    veil = board.scene.lens_src.data["veil"][0]
     # key_padding_mask True = key forbidden for every query (torch's convention); torch puts no weight there
     expected = np.broadcast_to(pad[1][None, :], veil.shape).astype(np.uint8)
     np.testing.assert_array_equal(veil, expected)
@@ -76,7 +78,7 @@ def test_leaked_mass_is_painted(leaky):
     rec = leaky.attention[0]
     for g in (0, 1):
         board.head = g
-        veil = board.scene.veil_src.data["image"][0]
+        veil = board.scene.lens_src.data["veil"][0]
         # brute force: forbidden (above the diagonal) and carrying weight, from the recorded weights
         w = rec.weights[0, g]
         for i in range(6):
@@ -121,15 +123,16 @@ def test_a_tap_in_atlas_or_scores_selects_the_head(translator):
 def test_batch_item_chooser_changes_atlas_stream_and_lens(translator):
     board = dashboard(translator, head=5)
     rec = translator.attention[1]
-    tiles0 = [t.copy() for t in board.scene.atlas_src.data["image"]]
+    mosaic0 = board.scene.atlas_src.data["image"][0].copy()
     stream0 = board.scene.stream_src.data["image"][0].copy()
     board.item_choice.value = 1
     assert board.item == 1
     np.testing.assert_array_equal(board.scene.lens_src.data["image"][0], rec.weights[1, 1])
-    # T=6 <= tile side: each tile is the map itself, scaled to its own maximum (hand formula)
+    # T=6 <= tile side: each tile is the map itself, scaled to its own maximum (hand formula), each cell 4x4 pixels
     w = translator.attention[0].weights[1, 0]
-    np.testing.assert_array_equal(board.scene.atlas_src.data["image"][0], np.rint(w / w.max() * 254).astype(np.uint8))
-    assert any((a != b).any() for a, b in zip(tiles0, board.scene.atlas_src.data["image"]))
+    tile = board.scene.tile_of(board.scene.atlas_src.data["image"][0], 0)
+    np.testing.assert_array_equal(tile[::4, ::4], np.rint(w / w.max() * 254).astype(np.uint8))
+    assert (board.scene.atlas_src.data["image"][0] != mosaic0).any()
     np.testing.assert_allclose(board.scene.stream_src.data["image"][0][0], translator.residual[0].norms[1])
     assert not np.array_equal(stream0, board.scene.stream_src.data["image"][0])
 
@@ -177,7 +180,7 @@ def test_stats_only_capture_shows_statistics_only():
     with torch.no_grad(), attnscope.capture(mha, keep="stats") as cap:
         mha(x, x, x)
     board = dashboard(cap)
-    assert board.scene.atlas_src.data["image"] == []
+    assert (board.scene.atlas_src.data["image"][0] == 255).all()  # no maps: background only
     assert "statistics only" in board.scene.lens_fig.title.text
     assert "statistics only" in board.scene.twins_fig.title.text
     np.testing.assert_allclose(board.scene.cells_src.data["score"], cap.head_table()["entropy_ratio"])
@@ -216,7 +219,7 @@ def test_twelve_by_twelve_heads_at_256_positions_fit_the_budget():
     naive_one = len(json.dumps(cap.attention[0].weights[0, 0].tolist()))
     assert sent <= 2_000_000
     assert 144 * naive_one / sent >= 40
-    assert {t.shape for t in board.scene.atlas_src.data["image"]} == {(24, 24)}
+    assert board.scene.atlas_src.data["image"][0].shape == (12 * 25, 12 * 25)
 
 
 def test_very_many_heads_degrade_with_a_warning():
@@ -231,7 +234,8 @@ def test_very_many_heads_degrade_with_a_warning():
     text = " ".join(str(w.message) for w in seen)
     assert "1024 heads are drawn as 9x9 tiles" in text or "tiles instead of 24x24" in text
     assert "too many for the distance matrix" in text
-    assert len(board.scene.atlas_src.data["image"]) == 1024
+    side = board.scene.tile
+    assert side < 24 and board.scene.atlas_src.data["image"][0].shape == (64 * (side + 1), 16 * (side + 1))
     assert board.first_render_bytes() < 2_000_000
     board.head = 1023
     assert board.scene.pick_src.data == {"x": [15.5], "y": [63.5]}

@@ -1,0 +1,219 @@
+"""Real browser: the dashboard in headless JupyterLab + Debian Chromium, and the exported page from file://.
+
+Nothing is set up for BokehJS: the notebook has no ``output_notebook`` cell, the page is opened offline.
+State is read from BokehJS itself (``Bokeh.documents``) and from the widget DOM.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import time
+from pathlib import Path
+
+import pytest
+
+from attnscope.views import export_html
+from conftest import HOSTILE, SOURCE, TARGET, translator_capture
+from labserver import chromium, jupyter_lab, open_notebook, run_all
+import views_notebooks
+
+pytestmark = pytest.mark.browser
+
+ARTIFACTS = Path(__file__).resolve().parents[2] / "artifacts"
+TIMINGS: dict[str, float] = {}
+
+# What the views show right now, read from BokehJS.
+STATE_JS = """() => {
+  if (!window.Bokeh) return null;
+  for (const d of Bokeh.documents) {
+    const lens = d.get_model_by_name('as-lens');
+    if (!lens) continue;
+    const get = (n) => d.get_model_by_name(n).data;
+    return {title: lens.title.text, pick: [get('as-pick').x[0], get('as-pick').y[0]],
+            q: Array.from(get('as-qlab').tok), k: Array.from(get('as-klab').tok),
+            stream_y: Array.from(get('as-stream-pick').y), twin_y: Array.from(get('as-twin-pick').y),
+            selected: Array.from(d.get_model_by_name('as-cells').selected.indices),
+            scores: d.get_model_by_name('as-scores').title.text, idle: d.is_idle};
+  }
+  return null; }"""
+
+# Page coordinates of data point (x, y) in the figure named `name`, via the figure's own scales.
+SCREEN_JS = """([name, x, y]) => {
+  for (const v of Bokeh.index.all_views()) {
+    if (v.model.name !== name || v.frame == null) continue;
+    const r = v.canvas_view.el.getBoundingClientRect();
+    return [r.left + v.frame.x_scale.compute(x), r.top + v.frame.y_scale.compute(y)];
+  }
+  return null; }"""
+
+COLOURS_JS = """([name]) => {
+  for (const v of Bokeh.index.all_views()) {
+    if (v.model.name !== name || v.canvas_view == null) continue;
+    const c = v.canvas_view.el.querySelector('canvas') ?? v.canvas_view.primary.canvas;
+    const d = c.getContext('2d').getImageData(0, 0, c.width, c.height).data;
+    const s = new Set(); for (let i = 0; i < d.length; i += 16) s.add(d[i] << 16 | d[i+1] << 8 | d[i+2]);
+    return s.size;
+  }
+  return -1; }"""
+
+
+@pytest.fixture(scope="module")
+def lab(tmp_path_factory):
+    ARTIFACTS.mkdir(exist_ok=True)
+    with jupyter_lab(tmp_path_factory.mktemp("lab")) as lab:
+        TIMINGS["lab_startup_s"] = round(lab["startup_s"], 2)
+        yield lab
+    (ARTIFACTS / "views_browser_timings.json").write_text(json.dumps(TIMINGS, indent=1))
+
+
+@pytest.fixture(scope="module")
+def playwright():
+    from playwright.sync_api import sync_playwright
+
+    with sync_playwright() as p:
+        yield p
+
+
+@pytest.fixture(scope="module")
+def browser(playwright, tmp_path_factory):
+    with chromium(playwright, tmp_path_factory.mktemp("profile"), width=1500, height=2000) as ctx:
+        yield ctx
+
+
+def watch(page):
+    page.problems = []
+    page.on("pageerror", lambda e: page.problems.append(f"pageerror: {e}"))
+    page.on("console", lambda m: m.type == "error" and page.problems.append(f"console: {m.text}"))
+    page.on("dialog", lambda d: (page.problems.append(f"dialog: {d.message}"), d.dismiss()))
+    return page
+
+
+def state(page):
+    return page.evaluate(STATE_JS)
+
+
+def hover_text(page, fig, x, y):
+    px, py = page.evaluate(SCREEN_JS, [fig, x, y])
+    page.mouse.move(px, py)
+    tip = page.locator(".bk-Tooltip .bk-tooltip-content").first
+    tip.wait_for(state="visible", timeout=10_000)
+    text = tip.inner_text()
+    scripts = tip.evaluate("t => t.querySelectorAll('script').length")
+    page.mouse.move(0, 0)
+    return text, scripts
+
+
+def tap(page, fig, x, y):
+    px, py = page.evaluate(SCREEN_JS, [fig, x, y])
+    page.mouse.click(px, py)
+
+
+def shot(locator):
+    return hashlib.sha1(locator.screenshot()).hexdigest()
+
+
+def test_dashboard_in_jupyterlab_without_setup_cell(lab, browser):
+    views_notebooks.write(lab["root"] / "board.ipynb", views_notebooks.TRANSLATOR)
+    page = watch(browser.new_page())
+    open_notebook(page, lab, "board")
+    t0 = time.perf_counter()
+    run_all(page)
+    board = page.locator(".jp-NotebookPanel:not(.lm-mod-hidden) .jp-OutputArea-output .as-dashboard")
+    canvas = board.locator(".as-plot canvas").first
+    js_error = page.get_by_text("Click to show javascript error.")
+    canvas.or_(js_error).first.wait_for(state="visible", timeout=90_000)
+    assert not js_error.count(), "\n".join(page.problems)
+    page.wait_for_function(f"() => ({STATE_JS})()?.idle === true", timeout=30_000)
+    TIMINGS["run_all_to_first_render_s"] = round(time.perf_counter() - t0, 2)
+    s0 = state(page)
+    assert "encoder.layers.0.self_attn · head 0" in s0["title"] and s0["q"] == SOURCE and s0["selected"] == [0]
+    assert page.evaluate(COLOURS_JS, ["as-lens"]) > 10 and page.evaluate(COLOURS_JS, ["as-atlas"]) > 10
+    page.wait_for_timeout(300)
+    lens_png = shot(board.locator(".as-plot"))
+
+    # hover: the token pair and weight, the hostile token shown as text (row 1 is the hostile source token)
+    text, scripts = hover_text(page, "as-lens", 2, 1)
+    assert "weight" in text and HOSTILE in text and "lamp" in text and scripts == 0
+
+    # select through the ipywidgets dropdown: decoder.layers.1.self_attn head 1, a causal head (veil visible)
+    t1 = time.perf_counter()
+    board.locator(".as-head select").select_option(label="decoder.layers.1.self_attn · head 1")
+    expect_status = "showing decoder.layers.1.self_attn · head 1"
+    board.locator(".as-status", has_text=expect_status).wait_for(timeout=30_000)
+    page.wait_for_function(f"() => ({STATE_JS})().title.includes('decoder.layers.1.self_attn · head 1')",
+                           timeout=30_000)
+    TIMINGS["dropdown_round_trip_s"] = round(time.perf_counter() - t1, 3)
+    s1 = state(page)
+    assert s1["pick"] == [1.5, 4.5] and s1["selected"] == [17]  # atlas + scores mark
+    assert s1["q"] == TARGET and s1["k"] == TARGET
+    assert s1["stream_y"] == [3.5] and s1["stream_y"] != s0["stream_y"]  # block decoder.layers.1
+    assert s1["twin_y"][0] == 17.5
+    assert "causal" in s1["title"]
+    page.wait_for_timeout(300)
+    assert shot(board.locator(".as-plot")) != lens_png
+    board.screenshot(path=str(ARTIFACTS / "dashboard_lab_causal.png"))
+
+    # tap an atlas tile: decoder.layers.0.multihead_attn head 2 (cross-attention)
+    t2 = time.perf_counter()
+    tap(page, "as-atlas", 2.5, 3.5)
+    page.wait_for_function(f"() => ({STATE_JS})().title.includes('decoder.layers.0.multihead_attn · head 2')",
+                           timeout=30_000)
+    TIMINGS["tile_tap_round_trip_s"] = round(time.perf_counter() - t2, 3)
+    s2 = state(page)
+    assert s2["q"] == TARGET and s2["k"] == SOURCE and s2["pick"] == [2.5, 3.5]
+    board.locator(".as-status", has_text="decoder.layers.0.multihead_attn · head 2").wait_for(timeout=10_000)
+    assert board.locator(".as-head select").evaluate("s => s.options[s.selectedIndex].text.replace(/\\u00a0/g, ' ')") == \
+        "decoder.layers.0.multihead_attn · head 2"
+
+    # tap a scores cell: encoder.layers.1.self_attn head 3
+    tap(page, "as-scores", 3.5, 1.5)
+    page.wait_for_function(f"() => ({STATE_JS})().title.includes('encoder.layers.1.self_attn · head 3')",
+                           timeout=30_000)
+    assert state(page)["selected"] == [7] and state(page)["pick"] == [3.5, 1.5]
+    board.screenshot(path=str(ARTIFACTS / "dashboard_lab.png"))
+    assert not page.problems, page.problems
+    page.close()
+
+
+def test_exported_page_offline_from_file(playwright, tmp_path, tmp_path_factory):
+    cap = translator_capture()
+    path = export_html(cap, tmp_path / "heads.html", tokens={"source": SOURCE, "target": TARGET},
+                       findings=[("encoder.layers.0.self_attn", 2, HOSTILE)])
+    remote = []
+    with chromium(playwright, tmp_path_factory.mktemp("offline"), width=1500, height=2000) as ctx:
+        ctx.set_offline(True)
+        ctx.route("**/*", lambda r: r.continue_() if r.request.url.startswith("file:")
+                  else (remote.append(r.request.url), r.abort()))
+        page = watch(ctx.new_page())
+        t0 = time.perf_counter()
+        page.goto(path.as_uri())
+        page.locator("canvas").first.wait_for(state="visible", timeout=30_000)
+        page.wait_for_function(f"() => ({STATE_JS})()?.idle === true", timeout=30_000)
+        TIMINGS["page_first_render_s"] = round(time.perf_counter() - t0, 2)
+        assert page.evaluate(COLOURS_JS, ["as-lens"]) > 10 and page.evaluate(COLOURS_JS, ["as-atlas"]) > 10
+        assert "encoder.layers.0.self_attn · head 0" in state(page)["title"]
+        text, scripts = hover_text(page, "as-lens", 2, 1)
+        assert HOSTILE in text and scripts == 0
+
+        # Bokeh Select (no kernel): head, then a tile tap, then the batch item and the statistic
+        selects = page.locator("select")
+        selects.nth(0).select_option(label="decoder.layers.1.self_attn · head 1")
+        page.wait_for_function(f"() => ({STATE_JS})().title.includes('decoder.layers.1.self_attn · head 1')",
+                               timeout=10_000)
+        s1 = state(page)
+        assert s1["pick"] == [1.5, 4.5] and s1["q"] == TARGET and s1["stream_y"] == [3.5] and s1["selected"] == [17]
+        tap(page, "as-atlas", 2.5, 3.5)
+        page.wait_for_function(f"() => ({STATE_JS})().title.includes('decoder.layers.0.multihead_attn · head 2')",
+                               timeout=10_000)
+        assert state(page)["k"] == SOURCE
+        assert selects.nth(0).evaluate("s => s.options[s.selectedIndex].text.replace(/\\u00a0/g, ' ')") == \
+            "decoder.layers.0.multihead_attn · head 2"
+        selects.nth(1).select_option(label="item 1")
+        page.wait_for_function(f"() => ({STATE_JS})().title.includes('item 1')", timeout=10_000)
+        selects.nth(2).select_option("sink_mass")
+        page.wait_for_function(f"() => ({STATE_JS})().scores.includes('sink_mass')", timeout=10_000)
+        page.wait_for_timeout(300)
+        page.screenshot(path=str(ARTIFACTS / "dashboard_page.png"), full_page=True)
+        assert not page.problems, page.problems
+        assert remote == []
