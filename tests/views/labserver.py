@@ -45,7 +45,8 @@ def jupyter_lab(workdir: Path, timeout: float = 90.0) -> Iterator[dict[str, Any]
            "--IdentityProvider.token=", "--ServerApp.password=",  # no auth: bound to localhost, test only
            f"--ServerApp.root_dir={d['root']}", "--LabApp.news_url=None",
            "--LabApp.check_for_updates_class=jupyterlab.NeverCheckForUpdate",
-           "--LabApp.expose_app_in_browser=True"]  # window.jupyterapp, to run cells and read kernel state
+           "--LabApp.expose_app_in_browser=True",  # window.jupyterapp, to run cells and read kernel state
+           "--JupyterNotebookApp.expose_app_in_browser=True"]  # the same in Notebook 7 (/notebooks/...)
     log = open(workdir / "server.log", "w")
     t0 = time.perf_counter()
     proc = subprocess.Popen(cmd, env=env, stdout=log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL)
@@ -92,6 +93,13 @@ def chromium(playwright: Any, profile: Path, **viewport: int) -> Iterator[Any]:
 def open_notebook(page: Any, lab: dict[str, Any], name: str, timeout_ms: int = 60_000) -> None:
     """Open ``<root>/<name>.ipynb`` in a workspace of its own and wait until its kernel is really idle."""
     page.goto(f"{lab['url']}lab/workspaces/{name}/tree/{name}.ipynb")
+    page.locator(".jp-Notebook .jp-Cell").first.wait_for(timeout=timeout_ms)
+    page.wait_for_function(KERNEL_IDLE_JS, timeout=timeout_ms)
+
+
+def open_notebook7(page: Any, lab: dict[str, Any], name: str, timeout_ms: int = 60_000) -> None:
+    """Open ``<root>/<name>.ipynb`` in the Notebook 7 interface of the same server; wait for an idle kernel."""
+    page.goto(f"{lab['url']}notebooks/{name}.ipynb")
     page.locator(".jp-Notebook .jp-Cell").first.wait_for(timeout=timeout_ms)
     page.wait_for_function(KERNEL_IDLE_JS, timeout=timeout_ms)
 

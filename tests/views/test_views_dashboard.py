@@ -222,6 +222,7 @@ def test_twelve_by_twelve_heads_at_256_positions_fit_the_budget():
     assert board.scene.atlas_src.data["image"][0].shape == (12 * 25, 12 * 25)
 
 
+@pytest.mark.slow
 def test_very_many_heads_degrade_with_a_warning():
     torch.manual_seed(0)
     layer = nn.TransformerEncoderLayer(16, 16, 16, dropout=0.0, batch_first=True)
