@@ -1,7 +1,8 @@
 """The standalone page: the dashboard's views in one offline HTML file, interactive without a kernel.
 
 Every head's map is stored in the page as uint16 codes with one scale per map (``weight ≈ code * scale``,
-error at most half a code step); Bokeh JS callbacks swap them into the lens when a head is chosen. BokehJS is
+error at most half a code step); Bokeh JS callbacks turn the chosen head's codes back into weights and put
+them in the lens. BokehJS is
 inlined, so the file opens from disk with no network.
 
 >>> import torch, attnscope, tempfile, pathlib
@@ -45,7 +46,12 @@ function show(g, item) {
   const L = vault.data;
   const tq = L.tq[idx], tk = L.tk[idx];
   const geom = {x: [-0.5], y: [-0.5], dw: [tk], dh: [tq]};
-  lens.data = Object.assign({image: [L.image[idx]], veil: [L.veil[idx]], scale: [L.scale[idx]]}, geom);
+  // codes back to weights (float32), so colour bar and hover read weights
+  const codes = L.image[idx], scale = L.scale[idx];
+  const w = new Float32Array(codes.length);
+  for (let i = 0; i < codes.length; i++) w[i] = codes[i] * scale;
+  const image = Bokeh.require('core/util/ndarray').ndarray(w, {shape: codes.shape});
+  lens.data = Object.assign({image: [image], veil: [L.veil[idx]], scale: [1.0]}, geom);
   const li = item * R + L.record[idx];
   qlab.data = {tok: names.data.q[li]};
   klab.data = {tok: names.data.k[li]};
@@ -93,7 +99,7 @@ def _vaults(scene: Scene) -> dict[str, ColumnDataSource]:
             lens["image"].append(codes)
             lens["veil"].append(a["veil"])
             lens["scale"].append(scale)
-            lens["top"].append(float(codes.max()) if codes.max() > 0 else 1.0)
+            lens["top"].append(a["top"])
             lens["tq"].append(a["tq"])
             lens["tk"].append(a["tk"])
             lens["record"].append(h.record)

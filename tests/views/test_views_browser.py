@@ -34,7 +34,9 @@ STATE_JS = """() => {
             q: Array.from(get('as-qlab').tok), k: Array.from(get('as-klab').tok),
             stream_y: Array.from(get('as-stream-pick').y), twin_y: Array.from(get('as-twin-pick').y),
             selected: Array.from(d.get_model_by_name('as-cells').selected.indices),
-            scores: d.get_model_by_name('as-scores').title.text, idle: d.is_idle};
+            scores: d.get_model_by_name('as-scores').title.text, idle: d.is_idle,
+            top: d.get_model_by_name('as-lens-image').glyph.color_mapper.high,
+            lens_max: Math.max(...get('as-lens-src').image[0])};
   }
   return null; }"""
 
@@ -127,6 +129,7 @@ def test_dashboard_in_jupyterlab_without_setup_cell(lab, browser):
     page.wait_for_function(f"() => ({STATE_JS})()?.idle === true", timeout=30_000)
     TIMINGS["run_all_to_first_render_s"] = round(time.perf_counter() - t0, 2)
     s0 = state(page)
+    assert 0 < s0["lens_max"] <= 1 and s0["top"] == pytest.approx(s0["lens_max"], rel=1e-6)
     assert "encoder.layers.0.self_attn · head 0" in s0["title"] and s0["q"] == SOURCE and s0["selected"] == [0]
     assert page.evaluate(COLOURS_JS, ["as-lens"]) > 10 and page.evaluate(COLOURS_JS, ["as-atlas"]) > 10
     page.wait_for_timeout(300)
@@ -228,7 +231,8 @@ def test_exported_page_offline_from_file(playwright, tmp_path, tmp_path_factory)
         tap(page, "as-atlas", 2.5, 3.5)
         page.wait_for_function(f"() => ({STATE_JS})().title.includes('decoder.layers.0.multihead_attn · head 2')",
                                timeout=10_000)
-        assert state(page)["k"] == SOURCE
+        s2 = state(page)
+        assert s2["k"] == SOURCE and 0 < s2["lens_max"] <= 1 and s2["top"] == pytest.approx(s2["lens_max"], rel=1e-4)
         assert selects.nth(0).evaluate("s => s.options[s.selectedIndex].text.replace(/\\u00a0/g, ' ')") == \
             "decoder.layers.0.multihead_attn · head 2"
         selects.nth(1).select_option(label="item 1")
