@@ -1,0 +1,1 @@
+"""Analyses: pure functions on captures and numpy, and the behavioural probes (causality, padding)."""
