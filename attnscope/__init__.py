@@ -39,6 +39,30 @@ __version__ = "0.1.0"
 _LAZY = {
     "save": "attnscope.io",
     "load": "attnscope.io",
+    # behavioural probes
+    "CausalReport": "attnscope.analyses.causality",
+    "PaddingReport": "attnscope.analyses.causality",
+    "assert_causal": "attnscope.analyses.causality",
+    "assert_padding": "attnscope.analyses.causality",
+    "check_causal": "attnscope.analyses.causality",
+    "check_padding": "attnscope.analyses.causality",
+    # heads
+    "dead_heads": "attnscope.analyses.heads",
+    "duplicate_heads": "attnscope.analyses.heads",
+    "head_clusters": "attnscope.analyses.heads",
+    "head_output_norms": "attnscope.analyses.heads",
+    "head_distances": "attnscope.analyses.similarity",
+    "leak_summary": "attnscope.analyses.leaks",
+    "leak_table": "attnscope.analyses.leaks",
+    "ablate": "attnscope.analyses.ablation",
+    "head_importance": "attnscope.analyses.ablation",
+    "attention_rollout": "attnscope.analyses.rollout",
+    "aggregate_heads": "attnscope.analyses.aggregate",
+    "stitch_steps": "attnscope.analyses.generation",
+    "compare_captures": "attnscope.analyses.compare",
+    # views (need the notebook extra: ipywidgets, bokeh, jupyter_bokeh)
+    "dashboard": "attnscope.views",
+    "export_html": "attnscope.views",
 }
 
 __all__ = sorted([

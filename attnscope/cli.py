@@ -1,11 +1,21 @@
 """The attnscope command line.
 
-    attnscope table [TARGET] [--batch 2 --seq 12 --keep stats --csv heads.csv --save run.attnscope]
+    attnscope demo [--page attnscope-demo.html]      the whole job on the bundled demo models
+    attnscope table [TARGET] [--keep maps --csv heads.csv --save run.attnscope]
     attnscope show FILE.attnscope
+    attnscope page TARGET --out page.html            standalone dashboard page of one forward
+    attnscope check-causal TARGET [--mode exhaustive]
+    attnscope check-padding TARGET
 
-TARGET is ``package.module:factory``: a callable returning a model, or ``(model, inputs)`` where inputs is a
-tensor or a tuple of positional arguments. Without TARGET the built-in tiny seq2seq model is used. Exit codes:
-0 success, 1 a check failed, 2 bad usage or an attnscope error (message on stderr).
+TARGET is ``package.module:factory``, a callable returning one of:
+
+* a model (an ``nn.Module`` with an ``nn.Embedding``: token-id inputs are made up from its vocabulary);
+* ``(model, inputs)``: inputs a tensor or a tuple of positional arguments;
+* for the checks, ``(fn, x)`` or ``(fn, x, model)``: ``fn`` any callable of ``x`` (``lambda tgt: model(src, tgt)``
+  for a seq2seq decoder), ``model`` the module whose submodules are blamed; for check-padding
+  ``(fn, x, pad_mask)`` or ``(fn, x, pad_mask, model)``.
+
+Exit codes: 0 success, 1 a check failed, 2 bad usage or an attnscope error (message on stderr).
 """
 
 from __future__ import annotations
@@ -70,12 +80,81 @@ def builtin_model(batch: int, seq: int, seed: int) -> tuple[nn.Module, tuple]:
     return model, (src, tgt, None, model.generate_square_subsequent_mask(tgt.size(1)))
 
 
-def cmd_table(a: argparse.Namespace) -> int:
+def _capture_target(a: argparse.Namespace, keep: str):
     model, inputs = (builtin_model(a.batch, a.seq, a.seed) if a.target is None
                      else model_and_inputs(load_target(a.target), a.batch, a.seq, a.seed))
     model.eval()
-    with torch.no_grad(), attnscope.capture(model, keep=a.keep) as cap:
+    with torch.no_grad(), attnscope.capture(model, keep=keep) as cap:
         model(*inputs)
+    return cap, inputs
+
+
+def cmd_demo(a: argparse.Namespace) -> int:
+    from attnscope.tour import run_tour
+
+    result = run_tour(page=None if a.no_page else a.page, examples=a.examples, seed=a.seed)
+    print("\n".join(result.lines))
+    return EXIT_OK if result.ok else EXIT_CHECK_FAILED
+
+
+def cmd_page(a: argparse.Namespace) -> int:
+    from attnscope.views import export_html
+
+    cap, inputs = _capture_target(a, "maps")
+    ids = inputs[0] if inputs and isinstance(inputs[0], torch.Tensor) and not inputs[0].is_floating_point() else None
+    tokens = [[str(int(t)) for t in row] for row in ids] if ids is not None else None
+    path = export_html(cap, a.out, tokens=tokens, title=f"attnscope: {a.target or 'built-in model'}")
+    print(f"page written to {path}")
+    return EXIT_OK
+
+
+def _check_inputs(a: argparse.Namespace, padding: bool) -> tuple[Any, torch.Tensor, Any, nn.Module | None]:
+    """``(fn, x, pad_mask, model)`` from TARGET: a model, ``(fn, x[, model])`` or ``(fn, x, pad_mask[, model])``."""
+    target = load_target(a.target)
+    if isinstance(target, nn.Module):
+        if padding:
+            raise OptionError("check-padding needs (fn, x, pad_mask) from TARGET, to know which positions are padded")
+        model, (x, *_) = model_and_inputs(target, a.batch, a.seq, a.seed)
+        return model, x, None, None
+    sizes = (3, 4) if padding else (2, 3)
+    if not isinstance(target, tuple) or len(target) not in sizes or not callable(target[0]):
+        want = "(fn, x, pad_mask[, model])" if padding else "a model or (fn, x[, model])"
+        raise OptionError(f"TARGET must give {want}; it gave {type(target).__name__}")
+    fn, x = target[0], target[1]
+    pad = target[2] if padding else None
+    model = target[-1] if len(target) == sizes[1] else None
+    return fn, x, pad, model
+
+
+def _check_options(a: argparse.Namespace) -> dict:
+    opts = {"seq_dim": a.seq_dim, "mode": a.mode, "seed": a.seed}
+    if a.tol is not None:
+        opts["tol"] = a.tol
+    if a.vocab is not None:
+        opts["vocab_size"] = a.vocab
+    return opts
+
+
+def cmd_check_causal(a: argparse.Namespace) -> int:
+    from attnscope.analyses.causality import check_causal
+
+    fn, x, _, model = _check_inputs(a, padding=False)
+    report = check_causal(fn, x, model=model, **_check_options(a))
+    print(report.summary())
+    return EXIT_OK if report.ok else EXIT_CHECK_FAILED
+
+
+def cmd_check_padding(a: argparse.Namespace) -> int:
+    from attnscope.analyses.causality import check_padding
+
+    fn, x, pad, model = _check_inputs(a, padding=True)
+    report = check_padding(fn, x, pad, model=model, **_check_options(a))
+    print(report.summary())
+    return EXIT_OK if report.ok else EXIT_CHECK_FAILED
+
+
+def cmd_table(a: argparse.Namespace) -> int:
+    cap, _ = _capture_target(a, a.keep)
     table = cap.head_table()
     if a.csv:
         table.to_csv(a.csv, index=False)
@@ -109,25 +188,69 @@ def _print_residual(cap) -> None:
             print(f"  {rec.name:<32} {float(rec.norms.mean()):10.3f}")
 
 
+def _inputs_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--batch", type=int, default=2, help="batch size of made-up token inputs (default 2)")
+    p.add_argument("--seq", type=int, default=12, help="sequence length of made-up token inputs (default 12)")
+    p.add_argument("--seed", type=int, default=0, help="seed for inputs and perturbations (default 0)")
+
+
 def parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="attnscope", description="See and check what a transformer's attention does.",
-                                epilog="Attention weights are not a faithful explanation of a model's decisions.")
+    p = argparse.ArgumentParser(
+        prog="attnscope", description="See and check what a transformer's attention does.",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog="TARGET is package.module:factory (see `attnscope COMMAND --help`). Exit codes: 0 ok, 1 a check "
+               "failed, 2 usage or attnscope error.\nAttention weights are not a faithful explanation of a "
+               "model's decisions (Jain & Wallace 2019).")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    d = sub.add_parser("demo", help="the whole job on the bundled demo models: checks, findings, a dashboard page",
+                       description="Load the shipped demo models (a warehouse pick-path rewrite), check their "
+                                   "causal masking, find their planted dead and duplicate heads, compare post-LN "
+                                   "and pre-LN residual norms, and write a standalone dashboard page. Exit 1 if a "
+                                   "finding differs from what was planted.")
+    d.add_argument("--page", default="attnscope-demo.html", help="where to write the page (default %(default)s)")
+    d.add_argument("--no-page", action="store_true", help="do not write the page")
+    d.add_argument("--examples", type=int, default=16, help="fresh held-out labels to evaluate on (default 16)")
+    d.add_argument("--seed", type=int, default=2024, help="seed of the label generator (default 2024)")
+    d.set_defaults(run=cmd_demo)
+
     t = sub.add_parser("table", help="capture one forward of a model and print its per-head statistics",
                        description="Capture one forward and print one row per (attention call, head).")
     t.add_argument("target", nargs="?", help="package.module:factory giving a model or (model, inputs); "
                                              "default: a built-in tiny seq2seq model")
-    t.add_argument("--batch", type=int, default=2, help="batch size of made-up token inputs (default 2)")
-    t.add_argument("--seq", type=int, default=12, help="sequence length of made-up token inputs (default 12)")
-    t.add_argument("--seed", type=int, default=0, help="seed for weights and inputs (default 0)")
+    _inputs_options(t)
     t.add_argument("--keep", choices=["maps", "stats"], default="stats",
                    help="keep full maps or statistics only (default stats)")
     t.add_argument("--csv", metavar="PATH", help="also write the table as CSV")
     t.add_argument("--save", metavar="PATH", help="also save the capture (no pickle) for `attnscope show`")
     t.set_defaults(run=cmd_table)
+
     s = sub.add_parser("show", help="print the head table of a saved capture")
     s.add_argument("file", help="a file written by `attnscope table --save` or attnscope.save")
     s.set_defaults(run=cmd_show)
+
+    g = sub.add_parser("page", help="write a standalone dashboard page of one forward of a model",
+                       description="Capture one forward of TARGET and write the dashboard as one offline HTML file.")
+    g.add_argument("target", nargs="?", help="package.module:factory (default: the built-in tiny model)")
+    g.add_argument("--out", default="attnscope-page.html", help="where to write the page (default %(default)s)")
+    _inputs_options(g)
+    g.set_defaults(run=cmd_page)
+
+    for name, run, what in (("check-causal", cmd_check_causal, "no output position depends on a later input"),
+                            ("check-padding", cmd_check_padding, "outputs at real positions ignore padded content")):
+        c = sub.add_parser(name, help=f"behavioural check: {what}; exit 1 on a leak",
+                           description=f"Perturb inputs and watch outputs: {what}. Exit 0 when it holds, 1 on a "
+                                       "leak (with positions, magnitudes and the module that brings it in).")
+        c.add_argument("target", help="package.module:factory giving "
+                                      + ("(fn, x, pad_mask[, model])" if name == "check-padding"
+                                         else "a model, (model, inputs) or (fn, x[, model])"))
+        c.add_argument("--mode", choices=["screen", "exhaustive"], default="screen",
+                       help="screen: O(log T) forwards; exhaustive: the full dependency matrix (default screen)")
+        c.add_argument("--seq-dim", type=int, default=1, help="axis of the output that lines up with x's positions")
+        c.add_argument("--tol", type=float, help="change counted as dependence, relative to the output scale")
+        c.add_argument("--vocab", type=int, help="vocabulary size for token-id inputs (default: from the model)")
+        _inputs_options(c)
+        c.set_defaults(run=run)
     return p
 
 

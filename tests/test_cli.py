@@ -81,3 +81,70 @@ def test_module_entry_point_runs_builtin_model():
                          timeout=120)
     assert out.returncode == 0, out.stderr
     assert "decoder.layers.1.multihead_attn" in out.stdout and "cross" in out.stdout
+
+
+ZOO = textwrap.dedent("""
+    import torch
+    import torch.nn.functional as F
+    from torch import nn
+
+    class Dec(nn.Module):
+        def __init__(self, shift):
+            super().__init__()
+            torch.manual_seed(0)
+            self.emb, self.qkv, self.shift = nn.Embedding(30, 16), nn.Linear(16, 48), shift
+
+        def forward(self, ids):
+            x = self.emb(ids)
+            q, k, v = self.qkv(x).view(*ids.shape, 3, 2, 8).permute(2, 0, 3, 1, 4)
+            mask = torch.ones(ids.size(1), ids.size(1), dtype=torch.bool).tril(diagonal=self.shift)
+            return F.scaled_dot_product_attention(q, k, v, attn_mask=mask).transpose(1, 2).flatten(2)  # (B, T, D)
+
+    def good():
+        return Dec(0)
+
+    def leaky():
+        return Dec(1)
+
+    def padded():
+        m = Dec(0)
+        ids = torch.randint(0, 30, (2, 6))
+        pad = torch.zeros(2, 6, dtype=torch.bool)
+        pad[1, 4:] = True
+        return (lambda t: m(t).mean(dim=1, keepdim=True).expand(-1, 6, -1)), ids, pad, m  # pools over pads: a leak
+""")
+
+
+def test_check_commands_exit_1_on_a_leak_and_0_when_clean(tmp_path, monkeypatch, capsys):
+    (tmp_path / "deczoo.py").write_text(ZOO)
+    monkeypatch.chdir(tmp_path)
+    assert main(["check-causal", "deczoo:good", "--seq", "10"]) == 0
+    assert "is causal" in capsys.readouterr().out
+    assert main(["check-causal", "deczoo:leaky", "--seq", "10", "--mode", "exhaustive"]) == 1
+    out = capsys.readouterr().out
+    assert "output position 0 depends on later input position 1" in out  # the off-by-one mask: i sees i + 1
+    assert main(["check-padding", "deczoo:padded", "--seq-dim", "1"]) == 1
+    assert "does not ignore padding" in capsys.readouterr().out
+    assert main(["check-padding", "deczoo:good"]) == 2  # no pad mask to know what is padded
+    assert "needs (fn, x, pad_mask)" in capsys.readouterr().err
+
+
+def test_demo_reports_the_planted_findings(tmp_path, capsys):
+    page = tmp_path / "demo.html"
+    assert main(["demo", "--page", str(page), "--examples", "6"]) == 0
+    out = capsys.readouterr().out
+    assert "decoder_only_leaky" in out and "LEAK" in out and "brought in by 'blocks.0.attn'" in out
+    assert "blocks.1.attn head 1: uniform" in out and "blocks.0.attn head 3: silent" in out
+    assert "of 12 findings as planted" in out and "not a faithful explanation" in out
+    html = page.read_text()
+    assert "cdn.bokeh.org" not in html and len(html) > 100_000  # self-contained: BokehJS inline
+
+
+def test_every_command_has_help(capsys):
+    import pytest
+
+    for cmd in ("demo", "table", "show", "page", "check-causal", "check-padding"):
+        with pytest.raises(SystemExit) as stop:
+            main([cmd, "--help"])
+        assert stop.value.code == 0
+        assert "usage: attnscope " + cmd in capsys.readouterr().out

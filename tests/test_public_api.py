@@ -4,8 +4,12 @@ import attnscope
 
 EXPECTED = [
     "AttentionRecord", "AttnscopeError", "AttnscopeWarning", "Capture", "CaptureError", "CaptureFileError",
-    "CaptureStateError", "HeadSums", "MemoryBudgetError", "NoAttentionError", "OptionError", "ProbeError",
-    "ResidualRecord", "ShapeError", "UnsupportedModelError", "capture", "load", "save", "tap",
+    "CaptureStateError", "CausalReport", "HeadSums", "MemoryBudgetError", "NoAttentionError", "OptionError",
+    "PaddingReport", "ProbeError", "ResidualRecord", "ShapeError", "UnsupportedModelError", "ablate",
+    "aggregate_heads", "assert_causal", "assert_padding", "attention_rollout", "capture", "check_causal",
+    "check_padding", "compare_captures", "dashboard", "dead_heads", "duplicate_heads", "export_html",
+    "head_clusters", "head_distances", "head_importance", "head_output_norms", "leak_summary", "leak_table",
+    "load", "save", "stitch_steps", "tap",
 ]
 
 
@@ -24,3 +28,13 @@ def test_errors_share_one_base():
         obj = getattr(attnscope, name)
         if isinstance(obj, type) and name.endswith("Error"):
             assert issubclass(obj, attnscope.AttnscopeError), name
+
+
+def test_import_stays_light():
+    """`import attnscope` loads neither bokeh nor widgets nor scipy; they come with the functions that need them."""
+    import subprocess
+    import sys
+
+    code = "import sys, attnscope; print(sorted(m for m in ('bokeh', 'ipywidgets', 'scipy') if m in sys.modules))"
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "[]"
