@@ -28,6 +28,7 @@ from typing import Any
 import ipywidgets as W
 import traitlets
 from bokeh import __version__ as BOKEH_VERSION
+from bokeh.events import Tap
 from jupyter_bokeh.widgets import BokehModel
 
 from attnscope.errors import OptionError
@@ -88,6 +89,7 @@ class Dashboard(W.VBox):
         self.veil_choice = W.ToggleButton(value=True, description="mask veil", tooltip="grey: forbidden, magenta: leak")
         self.status = W.Label(value="")
         self.problem = W.HTML(value="")
+        scene.twins_fig.on_event(Tap, self._on_twin_tap)  # before the document is serialized: it subscribes
         self.plot = BokehModel(scene.layout)
         for widget, name in ((self.head_choice, "as-head"), (self.item_choice, "as-item"),
                              (self.statistic_choice, "as-statistic"), (self.veil_choice, "as-veil"),
@@ -164,6 +166,12 @@ class Dashboard(W.VBox):
             self.head = picked[-1]
         elif not picked:
             self._guarded("keep the selection", lambda: setattr(self.scene.cells_src.selected, "indices", [self.head]))
+
+    def _on_twin_tap(self, event: Any) -> None:
+        """A tap on a row of the twins matrix selects that row's head."""
+        g = self.scene.twin_row(event.y)
+        if g is not None:
+            self.head = g
 
     def _show_status(self) -> None:
         h = self.scene.heads[self.scene.g]

@@ -201,6 +201,9 @@ const picked = cells.selected.indices;
 if (picked.length > 0) show(picked[picked.length - 1], Number(item_select.value));
 else cells.selected.indices = [Number(head_select.value)];""")
     scene.cells_src.selected.js_on_change("indices", on_tap)
+    scene.twins_fig.js_on_event("tap", CustomJS(args=args, code=_SELECT_JS + """
+const g = Math.floor(cb_obj.y);
+if (has_twins && g >= 0 && g < cells.data.g.length) show(g, Number(item_select.value));"""))
     head_select.js_on_change("value", CustomJS(args=args, code=_SELECT_JS + """
 show(Number(head_select.value), Number(item_select.value));"""))
     item_select.js_on_change("value", CustomJS(args=args, code=_SELECT_JS + """

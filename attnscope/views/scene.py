@@ -409,6 +409,12 @@ class Scene:
         kept = self.records[record].heads if 0 <= record < len(self.records) else ()
         raise OptionError(f"record {record} has no kept head {head}; kept heads: {list(kept)}")
 
+    def twin_row(self, y: float | None) -> int | None:
+        """The head of the twins matrix row at data coordinate *y* (None outside the matrix)."""
+        if self.distances is None or y is None or not 0 <= y < len(self.heads):
+            return None
+        return int(y)
+
     def lens_arrays(self, g: int, item: int) -> dict[str, Any]:
         """The selected map for display: weights (pooled past lens_side), veil codes, labels, title."""
         h = self.heads[g]

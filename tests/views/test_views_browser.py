@@ -44,6 +44,7 @@ STATE_JS = """() => {
 SCREEN_JS = """([name, x, y]) => {
   for (const v of Bokeh.index.all_views()) {
     if (v.model.name !== name || v.frame == null) continue;
+    v.el.scrollIntoView({block: 'center'});  // the mouse only reaches what is on screen
     const r = v.canvas_view.el.getBoundingClientRect();
     return [r.left + v.frame.x_scale.compute(x), r.top + v.frame.y_scale.compute(y)];
   }
@@ -174,6 +175,12 @@ def test_dashboard_in_jupyterlab_without_setup_cell(lab, browser):
     page.wait_for_function(f"() => ({STATE_JS})().title.includes('encoder.layers.1.self_attn · head 3')",
                            timeout=30_000)
     assert state(page)["selected"] == [7] and state(page)["pick"] == [3.5, 1.5]
+
+    # tap a row of the twins matrix: head 20 (decoder.layers.1.multihead_attn head 0)
+    tap(page, "as-twins", 3.5, 20.5)
+    page.wait_for_function(f"() => ({STATE_JS})().title.includes('decoder.layers.1.multihead_attn · head 0')",
+                           timeout=30_000)
+    assert state(page)["twin_y"][0] == 20.5 and state(page)["pick"] == [0.5, 5.5]
     board.screenshot(path=str(ARTIFACTS / "dashboard_lab.png"))
     assert not page.problems, page.problems
     page.close()
@@ -235,6 +242,9 @@ def test_exported_page_offline_from_file(playwright, tmp_path, tmp_path_factory)
         assert s2["k"] == SOURCE and 0 < s2["lens_max"] <= 1 and s2["top"] == pytest.approx(s2["lens_max"], rel=1e-4)
         assert selects.nth(0).evaluate("s => s.options[s.selectedIndex].text.replace(/\\u00a0/g, ' ')") == \
             "decoder.layers.0.multihead_attn · head 2"
+        tap(page, "as-twins", 1.5, 5.5)
+        page.wait_for_function(f"() => ({STATE_JS})().title.includes('encoder.layers.1.self_attn · head 1')",
+                               timeout=10_000)
         selects.nth(1).select_option(label="item 1")
         page.wait_for_function(f"() => ({STATE_JS})().title.includes('item 1')", timeout=10_000)
         selects.nth(2).select_option("sink_mass")

@@ -120,6 +120,17 @@ def test_a_tap_in_atlas_or_scores_selects_the_head(translator):
     assert board.head == 9 and list(board.scene.cells_src.selected.indices) == [9]
 
 
+def test_a_tap_on_a_twins_row_selects_its_head(translator):
+    from bokeh.events import Tap
+
+    board = dashboard(translator)
+    fig = board.scene.twins_fig
+    fig._trigger_event(Tap(model=fig, x=3.2, y=13.6))  # what jupyter_bokeh does with a browser tap event
+    assert board.head == 13 and list(board.scene.cells_src.selected.indices) == [13]
+    fig._trigger_event(Tap(model=fig, x=3.2, y=-4.0))  # outside the matrix: nothing changes
+    assert board.head == 13
+
+
 def test_batch_item_chooser_changes_atlas_stream_and_lens(translator):
     board = dashboard(translator, head=5)
     rec = translator.attention[1]
