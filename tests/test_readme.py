@@ -30,3 +30,25 @@ def test_readme_claims_about_the_capture_hold(tmp_path, monkeypatch):
                                       "weights=(2, 4, 10, 10), causal=False, source='mha')")
     assert cap.attention[-1].kind == "cross" and cap.attention[-1].name == "decoder.layers.5.multihead_attn"
     assert cap.residual[0].norms.shape == (2, 10)
+
+
+def _run_block(containing: str) -> dict:
+    (block,) = [b for b in python_blocks() if containing in b]
+    namespace: dict = {}
+    exec(compile(block, str(README), "exec"), namespace)  # noqa: S102
+    return namespace
+
+
+def test_readme_causal_example_says_what_it_shows():
+    ns = _run_block("check_causal(load(\"decoder_only_leaky\")")
+    report = ns["report"]
+    assert (report.ok, report.violations[0][:2], report.blame) == (False, (0, 1), "blocks.0.attn")
+
+
+def test_readme_heads_example_finds_the_planted_heads():
+    from attnscope.demo.heads_specimen import PLANTED
+
+    ns = _run_block("heads_specimen")
+    found = {(f.name, f.head) for f in ns["attnscope"].dead_heads(ns["cap"], output_norms=ns["norms"])}
+    planted = {tuple(p) for kind in ("uniform", "sink", "silent") for p in PLANTED[kind]}
+    assert found == planted
