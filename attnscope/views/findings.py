@@ -1,8 +1,11 @@
 """Finding and check tables: whatever the analyses returned, turned into one escaped HTML table.
 
-Accepted inputs (``findings=`` and ``checks=`` of the dashboard): a pandas DataFrame; a list of dicts or
-dataclasses; a list of tuples, where the two shapes the head analyses return get their column names
-(``(name, head, reason)`` for silent heads, ``(name_a, head_a, name_b, head_b, distance)`` for twin heads).
+Accepted inputs (``findings=`` and ``checks=`` of the dashboard): a pandas DataFrame; a list of dicts,
+named tuples or dataclasses (a dataclass row shows its scalar fields, a tuple field its length, arrays are
+left out); one dataclass (a probe report); a list of plain tuples, where the two shapes the head analyses
+return get their column names (``(name, head, reason)`` for silent heads, ``(name_a, head_a, name_b, head_b,
+distance)`` for twin heads). A dict of such tables, ``{"silent heads": ..., "twin heads": ...}``, shows one
+titled table each.
 
 >>> frame = as_frame([("blocks.0.attn", 3, "uniform")])
 >>> list(frame.columns)
@@ -23,7 +26,7 @@ import pandas as pd
 
 from attnscope.errors import OptionError
 
-__all__ = ["as_frame", "html_table"]
+__all__ = ["as_frame", "as_tables", "html_table"]
 
 _TUPLE_COLUMNS = {3: ["name", "head", "reason"], 5: ["name_a", "head_a", "name_b", "head_b", "distance"]}
 
@@ -32,6 +35,8 @@ def as_frame(rows: Any, what: str = "findings") -> pd.DataFrame:
     """Turn a findings/checks input into a DataFrame (see the module docstring)."""
     if rows is None:
         return pd.DataFrame()
+    if dataclasses.is_dataclass(rows) and not isinstance(rows, type):
+        rows = [rows]
     if isinstance(rows, pd.DataFrame):
         return rows.reset_index(drop=isinstance(rows.index, pd.RangeIndex))
     if isinstance(rows, Mapping):
@@ -44,7 +49,7 @@ def as_frame(rows: Any, what: str = "findings") -> pd.DataFrame:
         return pd.DataFrame()
     first = rows[0]
     if dataclasses.is_dataclass(first) and not isinstance(first, type):
-        return pd.DataFrame([dataclasses.asdict(r) for r in rows])
+        return pd.DataFrame([_scalar_fields(r) for r in rows])
     if isinstance(first, Mapping):
         return pd.DataFrame([dict(r) for r in rows])
     if isinstance(first, tuple) and hasattr(first, "_fields"):
@@ -57,6 +62,32 @@ def as_frame(rows: Any, what: str = "findings") -> pd.DataFrame:
         columns = _TUPLE_COLUMNS.get(width, [f"column {i + 1}" for i in range(width)])
         return pd.DataFrame([list(r) for r in rows], columns=columns)
     return pd.DataFrame({what: [str(r) for r in rows]})
+
+
+def _scalar_fields(row: Any) -> dict[str, Any]:
+    """The fields of a dataclass row worth a table cell: scalars as they are, sequences by their length."""
+    out: dict[str, Any] = {}
+    for f in dataclasses.fields(row):
+        value = getattr(row, f.name)
+        if value is None or isinstance(value, (str, bool, int, float)):
+            out[f.name] = value
+        elif isinstance(value, (tuple, list)):
+            out[f.name] = len(value)
+    return out
+
+
+def _is_table(value: Any) -> bool:
+    return isinstance(value, (pd.DataFrame, list, tuple)) or (
+        dataclasses.is_dataclass(value) and not isinstance(value, type))
+
+
+def as_tables(value: Any, what: str) -> list[tuple[str, pd.DataFrame]]:
+    """``[(title, frame), ...]``: one table, or one per entry of a dict of tables."""
+    if value is None:
+        return []
+    if isinstance(value, Mapping) and value and all(_is_table(v) for v in value.values()):
+        return [(str(title), as_frame(rows, str(title))) for title, rows in value.items()]
+    return [(what, as_frame(value, what))]
 
 
 def _cell(value: Any) -> str:

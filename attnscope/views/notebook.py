@@ -21,8 +21,10 @@ and nothing is fetched from the network.
 
 from __future__ import annotations
 
+import contextlib
 import html
 import json
+from collections.abc import Iterator
 from typing import Any
 
 import ipywidgets as W
@@ -60,6 +62,48 @@ def bokehjs_loader() -> str:
     return _loader_cache
 
 
+class _BokehView(BokehModel):
+    """A BokehModel that can send the changes of one update as one patch message.
+
+    jupyter_bokeh sends every property change on its own (four comm messages each, then a repaint in the
+    browser); inside :meth:`batched` the changes are held and go out together, applied by BokehJS at once.
+    """
+
+    _held: list[Any] | None = None
+
+    def _document_patched(self, event: Any) -> None:
+        if event.setter is self:
+            return
+        if self._held is not None:
+            self._held.append(event)
+            return
+        super()._document_patched(event)
+
+    @contextlib.contextmanager
+    def batched(self) -> Iterator[None]:
+        if self._held is not None:  # already batching: the outer block sends
+            yield
+            return
+        self._held = []
+        try:
+            yield
+        finally:
+            events, self._held = self._held, None
+            if events:
+                self._send_patch(events)
+
+    def _send_patch(self, events: list[Any]) -> None:
+        from bokeh.protocol import Protocol
+
+        msg = Protocol().create("PATCH-DOC", events)
+        self.send({"msg": "patch", "payload": msg.header_json})
+        self.send({"msg": "patch", "payload": msg.metadata_json})
+        self.send({"msg": "patch", "payload": msg.content_json})
+        for buffer in msg.buffers:
+            self.send({"msg": "patch", "payload": json.dumps(buffer.ref)})
+            self.send({"msg": "patch"}, [buffer.to_bytes()])
+
+
 class Dashboard(W.VBox):
     """The notebook dashboard widget (see :func:`dashboard`).
 
@@ -90,7 +134,7 @@ class Dashboard(W.VBox):
         self.status = W.Label(value="")
         self.problem = W.HTML(value="")
         scene.twins_fig.on_event(Tap, self._on_twin_tap)  # before the document is serialized: it subscribes
-        self.plot = BokehModel(scene.layout)
+        self.plot = _BokehView(scene.layout)
         for widget, name in ((self.head_choice, "as-head"), (self.item_choice, "as-item"),
                              (self.statistic_choice, "as-statistic"), (self.veil_choice, "as-veil"),
                              (self.status, "as-status"), (self.problem, "as-problem"), (self.plot, "as-plot")):
@@ -135,7 +179,8 @@ class Dashboard(W.VBox):
     def _guarded(self, what: str, action: Any) -> None:
         """Run a view update; show its error under the controls and keep the widget usable."""
         try:
-            action()
+            with self.plot.batched():
+                action()
             self.problem.value = ""
         except Exception as e:  # noqa: BLE001 - an observer must not take the widget down
             self.problem.value = (f"<span style='color:#b00020'>could not {html.escape(what)}: "

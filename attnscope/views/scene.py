@@ -57,7 +57,7 @@ from bokeh.plotting import figure
 
 from attnscope.errors import AttnscopeWarning, OptionError, ShapeError, suggest
 from attnscope.records import STAT_COLUMNS
-from attnscope.views.findings import as_frame, html_table
+from attnscope.views.findings import as_frame, as_tables, html_table
 from attnscope.views.labels import TokenLabels
 from attnscope.views.tiles import TILE_TOP, mask_codes, pool, quantise_tile
 
@@ -163,8 +163,8 @@ class Scene:
         self._warn_pooled_lens()
         self.scores = self._score_table()
         self.distances, self.twin_note = self._distances(cap, distances)
-        self.findings = as_frame(findings, "findings")
-        self.checks = as_frame(checks, "checks")
+        self.findings = as_tables(findings, "findings") or [("findings", as_frame(None))]
+        self.checks = as_tables(checks, "checks") or [("checks", as_frame(None))]
         self._build()
         self.set_statistic(self.statistic)
         self.set_item(0)
@@ -269,7 +269,7 @@ class Scene:
             f.xaxis.major_label_overrides = x_names
             f.yaxis.ticker = FixedTicker(ticks=y_ticks)
             f.yaxis.major_label_overrides = y_names
-            f.grid.visible = False
+            f.center = []  # no grid lines (fewer models to send and draw)
             f.xaxis.axis_label = "head"
             return f
 
@@ -323,7 +323,7 @@ class Scene:
             axis.formatter = CustomJSTickFormatter(args=dict(src=src), code=_TICK_TOKEN)
             axis.axis_label = label
         self.lens_fig.xaxis.major_label_orientation = math.pi / 2
-        self.lens_fig.grid.visible = False
+        self.lens_fig.center = []  # no grid lines (fewer models to send and draw)
         self.lens_fig.add_layout(ColorBar(color_mapper=self.lens_mapper, width=12), "right")
         self.lens_fig.add_tools(HoverTool(renderers=[img], tooltips=[
             ("query", "$y{tok}"), ("key", "$x{tok}"), ("weight", "@image{w}")], formatters={
@@ -352,7 +352,7 @@ class Scene:
         self.stream_fig.yaxis.major_label_overrides = {b + 0.5: _short(blk.name or "(model)")
                                                        for b, blk in enumerate(self.blocks)}
         self.stream_fig.xaxis.axis_label = "position"
-        self.stream_fig.grid.visible = False
+        self.stream_fig.center = []  # no grid lines (fewer models to send and draw)
         self.stream_fig.add_layout(ColorBar(color_mapper=self.stream_mapper, width=12), "right")
         self.stream_fig.add_tools(HoverTool(renderers=[simg], tooltips=[
             ("block", "@name"), ("position", "$x{tok}"), ("norm", "@image{0.000}")],
@@ -375,7 +375,7 @@ class Scene:
         self.twins_fig.rect(x="x", y="y", width="w", height="h", source=self.twin_pick_src, fill_alpha=0,
                             line_color=PICK_COLOUR, line_width=1.5)
         self.twins_fig.axis.visible = False
-        self.twins_fig.grid.visible = False
+        self.twins_fig.center = []  # no grid lines (fewer models to send and draw)
         self.twins_fig.add_layout(ColorBar(color_mapper=self.twin_mapper, width=12), "right")
         self.twins_fig.add_tools(HoverTool(renderers=[timg], tooltips=[
             ("head", "$y{lab}"), ("with", "$x{lab}"), ("distance", "@image{0.000}")], formatters={
@@ -388,8 +388,8 @@ class Scene:
 
         # ---- findings and the caution line
         self.findings_div = Div(name="as-findings", width=560, styles={"overflow": "auto", "max-height": "460px"},
-                                text=_TABLE_STYLE + html_table(self.findings, "findings (silent and twin heads)")
-                                + html_table(self.checks, "checks"))
+                                text=_TABLE_STYLE + "".join(html_table(frame, title)
+                                                            for title, frame in self.findings + self.checks))
         self.caution_div = Div(name="as-caution", text=f"<div class='as-caution'>{CAUTION}</div>", width=1200,
                                styles={"color": "#7a4b00", "font-size": "12px"})
         self.layout = column(self.caution_div, row(self.atlas_fig, self.lens_fig), row(self.scores_fig,

@@ -36,7 +36,7 @@ STATE_JS = """() => {
             selected: Array.from(d.get_model_by_name('as-cells').selected.indices),
             scores: d.get_model_by_name('as-scores').title.text, idle: d.is_idle,
             top: d.get_model_by_name('as-lens-image').glyph.color_mapper.high,
-            lens_max: Math.max(...get('as-lens-src').image[0])};
+            lens_max: Math.max(...get('as-lens-src').image[0]), veil: d.get_model_by_name('as-veil').visible};
   }
   return null; }"""
 
@@ -247,6 +247,8 @@ def test_exported_page_offline_from_file(playwright, tmp_path, tmp_path_factory)
                                timeout=10_000)
         selects.nth(1).select_option(label="item 1")
         page.wait_for_function(f"() => ({STATE_JS})().title.includes('item 1')", timeout=10_000)
+        page.get_by_text("mask veil").click()
+        page.wait_for_function(f"() => ({STATE_JS})().veil === false", timeout=10_000)
         selects.nth(2).select_option("sink_mass")
         page.wait_for_function(f"() => ({STATE_JS})().scores.includes('sink_mass')", timeout=10_000)
         page.wait_for_timeout(300)

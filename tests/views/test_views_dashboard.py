@@ -75,6 +75,10 @@ def test_padding_is_veiled(mha_case):
 
 def test_leaked_mass_is_painted(leaky):
     board = dashboard(leaky)
+    assert board.scene.veil.visible
+    board.veil_choice.value = False  # the toggle hides the veil, the map stays
+    assert not board.scene.veil.visible and board.scene.lens_src.data["image"]
+    board.veil = True
     rec = leaky.attention[0]
     for g in (0, 1):
         board.head = g
@@ -216,6 +220,19 @@ def test_first_render_payload_stays_small_and_maps_travel_on_selection(translato
     assert len(board.scene.lens_src.data["image"]) == 1  # one full map, the selected one
 
 
+def test_a_selection_reaches_the_browser_as_one_patch(translator):
+    board = dashboard(translator)
+    sent = []
+    board.plot.send = lambda content, buffers=None: sent.append((content, buffers))  # the widget's comm messages
+    board.head = 17
+    headers = [json.loads(c["payload"]) for c, _ in sent if '"msgtype"' in c.get("payload", "")]
+    assert [h["msgtype"] for h in headers] == ["PATCH-DOC"]
+    content = json.loads(sent[2][0]["payload"])
+    changed = {e.get("attr") for e in content["events"]} | {e["kind"] for e in content["events"]}
+    assert {"text", "high", "ColumnDataChanged", "indices"} <= changed  # title, colour bar, sources, selection
+    assert sum(1 for _, b in sent if b) >= 1  # the map travels as a binary buffer, not as JSON numbers
+
+
 @pytest.mark.slow
 def test_twelve_by_twelve_heads_at_256_positions_fit_the_budget():
     torch.manual_seed(0)
@@ -275,3 +292,20 @@ def test_options_fail_with_suggestions(translator):
         dashboard(translator, bokehjs="sometimes")
     with pytest.raises(OptionError, match="no kept head 9"):
         dashboard(translator).scene.head_index("encoder.layers.0.self_attn", 9)
+
+
+def test_findings_and_checks_from_the_analyses_are_listed(translator):
+    from attnscope.analyses.causality import check_causal
+    from attnscope.analyses.heads import dead_heads, duplicate_heads
+
+    twins = duplicate_heads(translator, max_distance=0.5)
+    torch.manual_seed(0)
+    layer = nn.TransformerEncoderLayer(8, 2, 16, dropout=0.0, batch_first=True).eval()
+    mask = nn.Transformer.generate_square_subsequent_mask(5)
+    report = check_causal(lambda x: layer(x, src_mask=mask, is_causal=True), torch.randn(1, 5, 8))
+    board = dashboard(translator, findings={"silent heads": dead_heads(translator), "twin heads": twins},
+                      checks={"causal (encoder layer)": report})
+    text = figures(board)["as-findings"].text
+    assert "silent heads" in text and "twin heads" in text and "causal (encoder layer)" in text
+    assert twins and f"<td>{twins[0].name_a}</td>" in text and "<th>distance</th>" in text
+    assert "<th>ok</th>" in text and "<td>True</td>" in text and "<th>dependency</th>" not in text
