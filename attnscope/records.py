@@ -105,7 +105,8 @@ class AttentionRecord:
         weights: float32 ``(B, H, Tq, Tk)`` attention weights of the kept heads, rows summing to 1 over allowed
             keys; ``None`` when the capture kept statistics only.
         allowed: bool, broadcastable to ``(B, H, Tq, Tk)``: True where the applied mask lets a query see a key
-            (attention mask, key padding mask and causal flag combined); ``None`` when no mask was applied.
+            (attention mask, key padding mask and causal flag combined); ``None`` when no mask was applied, and
+            always ``None`` with ``keep="stats"`` (which keeps O(heads) numbers per call, no mask).
         causal: True when a causal mask was applied (``is_causal`` or a mask that forbids every later key).
         stats: per-head sums of the kept heads, computed from the full-precision weights during the call.
         shape: ``(B, H, Tq, Tk)`` of the call, before any head selection.

@@ -91,14 +91,18 @@ def test_refuses_what_is_not_a_capture(cap, tmp_path):
         p = tmp_path / f"{label.replace(' ', '_')}.attnscope"
         _rewrite(good, p, edit)
         cases[label] = p
+    with zipfile.ZipFile(good) as zf:  # a corrupted byte inside the stored data of the manifest: CRC check fails
+        info = zf.getinfo("capture.json")
+    data_start = info.header_offset + 30 + len(info.filename.encode()) + len(info.extra)
     flipped = bytearray(raw)
-    flipped[len(raw) // 3] ^= 0xFF  # a corrupted byte inside some member: CRC check fails
+    flipped[data_start + info.compress_size // 2] ^= 0xFF
     (tmp_path / "flip.attnscope").write_bytes(bytes(flipped))
     cases["corrupted byte"] = tmp_path / "flip.attnscope"
 
     for label, path in cases.items():
         with pytest.raises(CaptureFileError):
             attnscope.load(path)
+            pytest.fail(f"loaded {label}")
     with pytest.raises(CaptureFileError, match="version 99"):
         attnscope.load(cases["wrong version"])
     with pytest.raises(CaptureFileError, match="without pickle"):

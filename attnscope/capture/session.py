@@ -532,7 +532,9 @@ class Capture:
         else:
             stats = self._reduce(compute, b, heads, allowed, offset, tq * tk * 4)
             kept = None
-        allowed_np = None if allowed is None else allowed.numpy().copy()
+        # keep="stats" keeps O(heads) numbers per call, so no (Tq, Tk) mask either: the statistics already hold
+        # what the mask meant (leak_mass, rows), and ``causal`` says whether it was causal.
+        allowed_np = None if allowed is None or self.keep == "stats" else allowed.numpy().copy()
         index = self._c.calls if replace_at is None else self.attention[replace_at].call
         record = AttentionRecord(name=frame.name, kind=kind, weights=kept, allowed=allowed_np, causal=causal,
                                  stats=stats, shape=shape, heads=heads, call=index, source=source,
