@@ -274,7 +274,7 @@ class Scene:
             return f
 
         self.atlas_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]), name="as-atlas-src")
-        self.atlas_fig = grid_figure("as-atlas", "atlas: every head (tiles scaled to their own maximum)")
+        self.atlas_fig = grid_figure("as-atlas", "atlas: every head, tiles scaled to own max")
         self.atlas_mapper = LinearColorMapper(palette=WEIGHT_PALETTE, low=0, high=TILE_TOP, high_color=BACKGROUND)
         self.atlas_fig.image(image="image", x="x", y="y", dw="dw", dh="dh", source=self.atlas_src,
                              color_mapper=self.atlas_mapper)
@@ -323,6 +323,7 @@ class Scene:
             axis.formatter = CustomJSTickFormatter(args=dict(src=src), code=_TICK_TOKEN)
             axis.axis_label = label
         self.lens_fig.xaxis.major_label_orientation = math.pi / 2
+        self.lens_fig.title.text_font_size = "11px"  # long module names: the title must fit the figure
         self.lens_fig.center = []  # no grid lines (fewer models to send and draw)
         self.lens_fig.add_layout(ColorBar(color_mapper=self.lens_mapper, width=12), "right")
         self.lens_fig.add_tools(HoverTool(renderers=[img], tooltips=[
@@ -439,7 +440,7 @@ class Scene:
         top = float(finite.max()) if finite.size and finite.max() > 0 else 1.0
         mask_note = "no mask applied" if rec.allowed is None else (
             f"leak {stat.get('leak_mass', float('nan')):.3g}" + (", causal" if rec.causal else ""))
-        title = (f"lens: {h.label} · item {item} · {rec.kind}-attention · {mask_note}"
+        title = (f"{h.label} · item {item} · {rec.kind} · {mask_note}"
                  + (f" · pooled to {w.shape[0]}x{w.shape[1]}" if pooled else ""))
         return dict(image=np.ascontiguousarray(w, dtype=np.float32), veil=veil, tq=tq, tk=tk, q=q, k=k, top=top,
                     title=title)

@@ -80,7 +80,7 @@ def playwright():
 
 @pytest.fixture(scope="module")
 def browser(playwright, tmp_path_factory):
-    with chromium(playwright, tmp_path_factory.mktemp("profile"), width=1500, height=2000) as ctx:
+    with chromium(playwright, tmp_path_factory.mktemp("profile"), width=1900, height=2000) as ctx:
         yield ctx
 
 
@@ -213,7 +213,7 @@ def test_exported_page_offline_from_file(playwright, tmp_path, tmp_path_factory)
     path = export_html(cap, tmp_path / "heads.html", tokens={"source": SOURCE, "target": TARGET},
                        findings=[("encoder.layers.0.self_attn", 2, HOSTILE)])
     remote = []
-    with chromium(playwright, tmp_path_factory.mktemp("offline"), width=1500, height=2000) as ctx:
+    with chromium(playwright, tmp_path_factory.mktemp("offline"), width=1900, height=2000) as ctx:
         ctx.set_offline(True)
         ctx.route("**/*", lambda r: r.continue_() if r.request.url.startswith("file:")
                   else (remote.append(r.request.url), r.abort()))

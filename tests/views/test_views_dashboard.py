@@ -110,7 +110,7 @@ def test_selecting_a_head_updates_every_linked_view(translator):
     assert s.lens_src.data["dh"] == [4] and s.lens_src.data["dw"] == [6]
     assert (s.lens_fig.x_range.end, s.lens_fig.y_range.start) == (5.5, 3.5)
     assert "decoder.layers.0.multihead_attn · head 2" in s.lens_fig.title.text
-    assert "cross-attention" in s.lens_fig.title.text
+    assert " · cross · " in s.lens_fig.title.text
     assert "head 2" in board.status.value
 
 
