@@ -156,7 +156,7 @@ class ProbeReport:
         shown = ", ".join(map(str, self.leaking_outputs[:_LISTED])) + (", ..." if n > _LISTED else "")
         where = f"{n} output position{'s' if n != 1 else ''} found moving ({shown})"
         if self.mode == "screen":
-            where += " (the screen perturbs at a few split points and need not find all; mode='exhaustive' does)"
+            where += self._screen_note()
         parts.append(where + ".")
         if len(self.violations) > 1:
             pairs = ", ".join(f"{i}<-{j} ({m:.3g})" for i, j, m in self.violations[:_LISTED])
@@ -175,6 +175,9 @@ class ProbeReport:
     def _pass_text(self) -> str:
         return "passed."
 
+    def _screen_note(self) -> str:
+        return ""
+
     def _fail_verb(self) -> str:
         return "failed"
 
@@ -187,6 +190,9 @@ class CausalReport(ProbeReport):
 
     def _pass_text(self) -> str:
         return "is causal on this input: no output position moved when later inputs changed."
+
+    def _screen_note(self) -> str:  # the causal screen perturbs blocks after a few splits, not every position
+        return " (the screen perturbs at a few split points and need not find all; mode='exhaustive' does)"
 
     def _fail_verb(self) -> str:
         return "is not causal"

@@ -19,7 +19,9 @@ same columns of ``out_proj``):
 
 The cut model is then healed: fine-tuned on the task with the cuts re-applied after every optimiser step,
 so the remaining heads learn to do without (:func:`recut`). Generation stays accurate; the heads story is
-that four of the eight heads can be found out as useless or redundant, and ablation confirms it.
+that four of the eight heads stand out: three are useless, and ablation confirms it (removing them barely
+moves the loss); the duplicate only shares its *map* with head 0 — its values and output columns are its own,
+so ablating it costs a lot. A duplicate map marks a candidate for pruning; ablation decides.
 
 >>> from attnscope.demo import load
 >>> from attnscope.demo.heads_specimen import PLANTED

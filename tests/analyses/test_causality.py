@@ -500,3 +500,17 @@ def test_block_used_in_zoo_is_causal_by_brute_force():
         block = Block(cfg, attn=attn).eval()
         e = torch.randn(1, T_ZOO, cfg.width, generator=torch.Generator().manual_seed(0))
         assert bool(np.triu(jacobian_dependency(block, e), 1).any()) is leaks
+
+
+def test_padding_screen_summary_does_not_claim_it_may_miss_positions():
+    """The padding screen perturbs every padded position at once, so it names no partial-coverage caveat."""
+    import attnscope
+
+    def pools_over_pads(t):  # every output reads the mean over all positions, pads included
+        return t.float().mean(dim=1, keepdim=True).expand(-1, t.size(1)).unsqueeze(-1) + 0 * t.unsqueeze(-1)
+
+    ids = torch.randint(1, 9, (2, 6))
+    pad = torch.zeros(2, 6, dtype=torch.bool)
+    pad[1, 4:] = True
+    text = attnscope.check_padding(pools_over_pads, ids, pad, vocab_size=10).summary()
+    assert "does not ignore padding" in text and "need not find all" not in text
