@@ -5,7 +5,7 @@ Attention weights show where a model looked, not why it decided: they are not a 
 decisions (Jain & Wallace 2019) and are no basis for high-stakes decisions.
 """
 
-from attnscope.views.notebook import Dashboard, dashboard
+from attnscope.views.notebook import Dashboard, dashboard, load_bokehjs
 from attnscope.views.page import export_html
 
-__all__ = ["Dashboard", "dashboard", "export_html"]
+__all__ = ["Dashboard", "dashboard", "export_html", "load_bokehjs"]

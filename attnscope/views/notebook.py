@@ -36,7 +36,7 @@ from jupyter_bokeh.widgets import BokehModel
 from attnscope.errors import OptionError
 from attnscope.views.scene import STATISTICS, Scene
 
-__all__ = ["Dashboard", "bokehjs_loader", "dashboard"]
+__all__ = ["Dashboard", "bokehjs_loader", "dashboard", "load_bokehjs"]
 
 _JS_MIME = "application/javascript"
 _LOAD_MIME = "application/vnd.bokehjs_load.v0+json"
@@ -60,6 +60,18 @@ def bokehjs_loader() -> str:
             "  for (const part of parts) part.call(root, root.Bokeh);\n"
             "})(window);\n")
     return _loader_cache
+
+
+def load_bokehjs() -> None:
+    """Put the inline BokehJS into the notebook page (offline), unless the page already has it.
+
+    A dashboard does this itself when it is displayed; call it when the dashboard is shown inside another
+    widget (a Tab, an HBox), whose display does not ask the dashboard.
+    """
+    from IPython.display import display
+
+    js = bokehjs_loader()
+    display({_JS_MIME: js, _LOAD_MIME: js}, raw=True)
 
 
 class _BokehView(BokehModel):
@@ -227,8 +239,7 @@ class Dashboard(W.VBox):
         from IPython.display import display
 
         if self._bokehjs == "always":
-            js = bokehjs_loader()
-            display({_JS_MIME: js, _LOAD_MIME: js}, raw=True)
+            load_bokehjs()
         display(self._repr_mimebundle_(), raw=True)
 
     def first_render_bytes(self) -> int:

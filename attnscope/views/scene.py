@@ -207,21 +207,23 @@ class Scene:
             warnings.warn(f"twins: {n} heads are too many for the distance matrix (at most {TWIN_HEADS}); "
                           f"capture fewer heads or layers to see it", AttnscopeWarning, stacklevel=4)
             return None, f"not drawn: {n} heads (at most {TWIN_HEADS})"
+        note = "Jensen–Shannon distance of head maps"
         if distances is None:
-            cost = 0
-            shapes: dict[tuple, int] = {}
+            heads_by_shape: dict[tuple[int, ...], int] = {}
             for rec in self.records:
                 if rec.weights is not None:
-                    shapes[rec.weights.shape[:1] + rec.weights.shape[2:]] = shapes.get(
-                        rec.weights.shape[:1] + rec.weights.shape[2:], 0) + len(rec.heads)
-            cost = sum(k * k * int(np.prod(s)) // 2 for s, k in shapes.items())
-            if not shapes:
+                    key = rec.weights.shape[:1] + rec.weights.shape[2:]  # (B, Tq, Tk): comparable maps
+                    heads_by_shape[key] = heads_by_shape.get(key, 0) + len(rec.heads)
+            if not heads_by_shape:
                 return None, "not available: the capture kept statistics only"
+            cost = sum(k * k * int(np.prod(shape)) // 2 for shape, k in heads_by_shape.items())
             if cost > AUTO_DISTANCE_CELLS:
                 return None, "not computed here (large): pass distances="
             from attnscope.analyses.similarity import head_distances
 
             distances = head_distances(cap)
+        else:
+            note = "head-to-head distances (given)"
         if isinstance(distances, pd.DataFrame):
             want = [(self.records[h.record].call, self.records[h.record].name, h.head) for h in self.heads]
             frame = distances
@@ -232,7 +234,7 @@ class Scene:
             m = np.asarray(distances, dtype=np.float32)
         if m.shape != (n, n):
             raise ShapeError(f"distances: expected a ({n}, {n}) matrix over the capture's heads, received {m.shape}")
-        return m, "Jensen–Shannon distance of head maps"
+        return m, note
 
     # ---------------------------------------------------------------- figures
     def _build(self) -> None:

@@ -188,6 +188,18 @@ def test_a_failing_update_shows_its_error_and_recovers(translator):
     np.testing.assert_array_equal(board.scene.lens_src.data["image"][0], recs[1].weights[0, 1])
 
 
+def test_given_distances_are_matched_to_heads_by_label(translator):
+    from attnscope.analyses.similarity import head_distances
+
+    frame = head_distances(translator)
+    order = np.random.default_rng(0).permutation(len(frame))
+    board = dashboard(translator, distances=frame.iloc[order, order])  # shuffled: matched by (call, name, head)
+    np.testing.assert_allclose(board.scene.twin_src.data["image"][0], frame.to_numpy(), rtol=1e-6, equal_nan=True)
+    assert "given" in board.scene.twins_fig.title.text
+    with pytest.raises(attnscope.ShapeError, match=r"expected a \(24, 24\) matrix"):
+        dashboard(translator, distances=np.zeros((3, 3)))
+
+
 def test_stats_only_capture_shows_statistics_only():
     torch.manual_seed(0)
     mha = nn.MultiheadAttention(8, 2, batch_first=True)

@@ -53,6 +53,7 @@ def test_dashboard_in_a_real_kernel_brings_bokehjs_itself(tmp_path):
     """nbclient runs the notebook without any set-up cell: the first output is the BokehJS loader."""
     nb = nbformat.read(views_notebooks.write(tmp_path / "d.ipynb", views_notebooks.TRANSLATOR), as_version=4)
     nb.cells.append(new_code_cell("board.head = 9\nprint(board.status.value)"))
+    nb.cells.append(new_code_cell("attnscope.views.load_bokehjs()  # for a dashboard inside another widget"))
     NotebookClient(nb, timeout=180, kernel_name="python3", resources={"metadata": {"path": str(tmp_path)}}).execute()
     outputs = nb.cells[0].outputs
     js = outputs[0]["data"]["application/javascript"]
@@ -60,5 +61,6 @@ def test_dashboard_in_a_real_kernel_brings_bokehjs_itself(tmp_path):
     assert outputs[0]["data"]["application/vnd.bokehjs_load.v0+json"] == js
     assert "application/vnd.jupyter.widget-view+json" in outputs[1]["data"]
     assert nb.cells[1].outputs[0]["text"].startswith("showing decoder.layers.0.self_attn · head 1")
+    assert nb.cells[2].outputs[0]["data"]["application/javascript"] == js
     state = nb.metadata["widgets"]["application/vnd.jupyter.widget-state+json"]["state"]
     assert {"BokehModel", "DropdownModel", "VBoxModel"} <= {m["model_name"] for m in state.values()}
