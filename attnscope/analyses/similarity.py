@@ -33,8 +33,9 @@ def _records(cap: Any) -> Sequence[AttentionRecord]:
 
 def _entropy_bits(p: np.ndarray) -> np.ndarray:
     """Row entropies in bits of ``(..., Tk)`` distributions, 0·log 0 = 0."""
-    with np.errstate(divide="ignore", invalid="ignore"):
-        terms = np.where(p > 0, p * np.log2(np.where(p > 0, p, 1.0)), 0.0)
+    terms = np.zeros_like(p)
+    np.log2(p, out=terms, where=p > 0)
+    terms *= p
     return -terms.sum(axis=-1)
 
 
