@@ -242,6 +242,13 @@ class Dashboard(W.VBox):
             load_bokehjs()
         display(self._repr_mimebundle_(), raw=True)
 
+    def show(self, record: int | str, head: int) -> None:
+        """Select a head by record (index or module name) and the model's head index.
+
+        >>> board.show("decoder.layers.0.multihead_attn", 2)   # doctest: +SKIP
+        """
+        self.head = self.scene.head_index(record, head)
+
     def first_render_bytes(self) -> int:
         """Bytes of widget state the browser receives when the dashboard is first shown (BokehJS not counted).
 

@@ -302,8 +302,13 @@ def test_options_fail_with_suggestions(translator):
         dashboard(translator, statistic="sinkmass")
     with pytest.raises(OptionError, match="bokehjs"):
         dashboard(translator, bokehjs="sometimes")
+    board = dashboard(translator)
     with pytest.raises(OptionError, match="no kept head 9"):
-        dashboard(translator).scene.head_index("encoder.layers.0.self_attn", 9)
+        board.show("encoder.layers.0.self_attn", 9)
+    with pytest.raises(OptionError, match="Did you mean 'decoder.layers.0.self_attn'"):
+        board.show("decoder.layers.0.self_atn", 1)
+    board.show("decoder.layers.0.multihead_attn", 2)
+    assert board.head == 14
 
 
 def test_findings_and_checks_from_the_analyses_are_listed(translator):
