@@ -107,6 +107,17 @@ def is_causal_mask(allowed: torch.Tensor | None, tq: int, tk: int, offset: int) 
     return not bool((allowed & future).any())
 
 
+def _empty_rows(m: torch.Tensor | None, is_causal: bool, tq: int, tk: int) -> torch.Tensor | None:
+    """Bool ``(..., Tq, 1)`` of rows with no allowed key under mask *m* (and the causal mask), or None if none."""
+    if m is None:
+        return None  # with is_causal alone every query sees key 0
+    ok = m if m.dtype == torch.bool else ~torch.isneginf(m)
+    if is_causal:
+        ok = ok & causal_allowed(tq, tk)
+    empty = ~ok.any(dim=-1, keepdim=True)
+    return empty if bool(empty.any()) else None
+
+
 def sdpa_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | None = None,
                  is_causal: bool = False, scale: float | None = None, enable_gqa: bool = False) -> torch.Tensor:
     """softmax(Q Kᵀ · scale + mask) with the semantics of ``F.scaled_dot_product_attention``, in float32.
@@ -122,20 +133,16 @@ def sdpa_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | Non
     tq, tk = q.size(-2), k.size(-2)
     scale = 1.0 / math.sqrt(q.size(-1)) if scale is None else scale
     scores = torch.matmul(q * scale, k.transpose(-2, -1))  # (B, H, Tq, Tk); scaling q is the cheaper side
-    masked = is_causal
     if is_causal:
         scores.add_(_causal_bias(tq, tk))
-    if attn_mask is not None:
-        m = attn_mask.detach()
+    m = None if attn_mask is None else attn_mask.detach()
+    if m is not None:
         if m.dtype == torch.bool:
             scores.masked_fill_(~m, float("-inf"))
-            masked = True
         else:
             scores = scores + m.float()  # not in place: the mask may broadcast to a larger shape
-            masked = masked or bool(torch.isneginf(m).any())
     weights = torch.softmax(scores, dim=-1)
-    if masked:
-        empty = torch.isneginf(scores.amax(dim=-1, keepdim=True))  # (B, H, Tq, 1): no allowed key
-        if bool(empty.any()):
-            weights.masked_fill_(empty, 0.0)  # softmax gives NaN there; the fused kernels give a zero output
+    empty = _empty_rows(m, is_causal, tq, tk)  # read off the (small) mask, never the full scores
+    if empty is not None:
+        weights.masked_fill_(empty, 0.0)  # softmax gives NaN there; the fused kernels give a zero output
     return weights

@@ -423,17 +423,18 @@ class Capture:
             a["need_weights"], a["average_attn_weights"], a["dropout_p"] = True, False, 0.0
             with torch.no_grad():
                 w = func(*bound.args, **bound.kwargs)[1].detach()
-            self._record_mha(frame, a, w)
+            self._record_mha(frame, a, w, shared=False)
             return result
         a["need_weights"], a["average_attn_weights"] = True, False
         # With need_weights=True torch takes its math path and returns the per-head weights it multiplied V by.
         out, weights = func(*bound.args, **bound.kwargs)
-        self._record_mha(frame, a, weights.detach())
+        # the caller gets this very tensor back only when it asked for per-head weights: copy it then
+        self._record_mha(frame, a, weights.detach(), shared=want_weights and not average)
         if not want_weights:
             return out, None
         return out, (weights.mean(dim=-3) if average else weights)
 
-    def _record_mha(self, frame: _Frame, a: dict, w: torch.Tensor) -> None:
+    def _record_mha(self, frame: _Frame, a: dict, w: torch.Tensor, shared: bool) -> None:
         w4 = w.unsqueeze(0) if w.dim() == 3 else w  # (B, H, Tq, Tk)
         b, h, tq, tk = w4.shape
         query, key = a["query"], a["key"]
@@ -446,7 +447,7 @@ class Capture:
         heads = self._kept_heads(h, frame.name)
         causal = bool(a["is_causal"]) or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, 0))
         self._record(frame, kind, (b, h, tq, tk), heads, allowed, causal, "mha", 0,
-                     lambda sl, hs: w4[sl][:, hs].float().clone())
+                     lambda sl, hs: _take(w4, sl, hs, shared))
 
     def _on_softmax(self, func, args, kwargs):
         out = func(*args, **kwargs)
@@ -466,7 +467,7 @@ class Capture:
         causal = kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset)
         w = out.detach()
         index = self._record(frame, kind, (b, h, tq, tk), heads, allowed, causal, "softmax", offset,
-                             lambda sl, hs: w[sl][:, hs].float().clone())
+                             lambda sl, hs: _take(w, sl, hs, shared=True))  # the model keeps using it
         frame.last_softmax = (out, index)
         return out
 
@@ -499,7 +500,7 @@ class Capture:
         if frame.last_softmax is not None and frame.last_softmax[0] is weights:
             replace_at = frame.last_softmax[1]  # the same tensor the softmax produced: tap refines that record
         self._record(frame, kind, (b, h, tq, tk), heads, allowed4, bool(causal), "tap", offset,
-                     lambda sl, hs: w[sl][:, hs].float().clone(), replace_at=replace_at)
+                     lambda sl, hs: _take(w, sl, hs, shared=True), replace_at=replace_at)
 
     # ---------------------------------------------------------------- making records
     def _kept_heads(self, h: int, name: str) -> tuple[int, ...]:
@@ -639,6 +640,18 @@ def head_table(records: Sequence[AttentionRecord]):
             rows.append(row)
     columns = ["name", "kind", "call", "head", "rows", *STAT_COLUMNS, "nonfinite_rows"]
     return pd.DataFrame(rows, columns=columns)
+
+
+def _take(w: torch.Tensor, sl: slice, hs: list[int], shared: bool) -> torch.Tensor:
+    """Batch slice *sl*, heads *hs* of ``(B, H, Tq, Tk)`` weights as float32 memory that no one else holds.
+
+    Picking heads by a list copies; all heads of a tensor no one else holds are taken as they are (no copy).
+    """
+    if not shared and hs == list(range(w.shape[1])):
+        part = w[sl]
+    else:
+        part = w[sl][:, hs]  # advanced indexing: a copy
+    return part.float().contiguous()
 
 
 def _remove_mode(mode: TorchFunctionMode) -> None:
