@@ -3,7 +3,7 @@
 It loads the shipped demo models (:mod:`attnscope.demo`), runs every check on them and writes the
 standalone page. ``attnscope demo`` prints its report; the example notebooks call the same steps.
 
->>> result = run_tour(page=None, examples=4)          # doctest: +SKIP
+>>> result = run_tour(page=None, examples=4)
 >>> result.ok
 True
 

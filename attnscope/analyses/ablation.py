@@ -42,9 +42,9 @@ import pandas as pd
 import torch
 import torch.nn.functional as F
 from torch import nn
-from torch.overrides import TorchFunctionMode
 
 from attnscope.capture.discovery import map_model
+from attnscope.capture.session import RoutingMode, attention_routes
 from attnscope.errors import NoAttentionError, OptionError, UnsupportedModelError, suggest
 
 __all__ = ["AttentionCall", "HeadAblation", "HeadIntervention", "ablate", "ablation_change", "head_importance",
@@ -52,7 +52,6 @@ __all__ = ["AttentionCall", "HeadAblation", "HeadIntervention", "ablate", "ablat
 
 ABLATION_MODES = ("zero", "mean")
 
-_SOFTMAX_FUNCS = {F.softmax, torch.softmax, torch.Tensor.softmax, torch.special.softmax}
 _MATMUL_FUNCS = {torch.matmul, torch.Tensor.matmul, torch.Tensor.__matmul__}
 _MHA_SIGNATURE = inspect.signature(F.multi_head_attention_forward)
 
@@ -97,24 +96,6 @@ class _Seen:
     attended: dict[str, int] = field(default_factory=dict)  # module name -> attention calls seen in it
 
 
-class _Mode(TorchFunctionMode):
-    def __init__(self, owner: HeadIntervention) -> None:
-        super().__init__()
-        self.owner = owner
-
-    def __torch_function__(self, func, types, args=(), kwargs=None):
-        kwargs = kwargs or {}
-        if func is F.scaled_dot_product_attention:
-            return self.owner._on_sdpa(func, args, kwargs)
-        if func is F.multi_head_attention_forward:
-            return self.owner._on_mha(func, args, kwargs)
-        if func in _SOFTMAX_FUNCS:
-            return self.owner._on_softmax(func, args, kwargs)
-        if func in _MATMUL_FUNCS:
-            return self.owner._on_matmul(func, args, kwargs)
-        return func(*args, **kwargs)
-
-
 class HeadIntervention:
     """Owns the hooks, the function mode and the fast-path switch of one run; sees and edits head outputs.
 
@@ -133,7 +114,7 @@ class HeadIntervention:
         self._observe = observe
         self._tls = threading.local()
         self._handles: list[Any] = []
-        self._mode: _Mode | None = None
+        self._mode: RoutingMode | None = None
         self._fastpath: bool | None = None
         self._used = False
         self.seen = _Seen()
@@ -150,7 +131,9 @@ class HeadIntervention:
             for name, module in self._model.named_modules():
                 self._handles.append(module.register_forward_pre_hook(self._pre_hook(name)))
                 self._handles.append(module.register_forward_hook(self._post_hook(), always_call=True))
-            self._mode = _Mode(self)
+            routes = attention_routes(self)
+            routes.update({f: self._on_matmul for f in _MATMUL_FUNCS})  # HF eager: weights @ values
+            self._mode = RoutingMode(routes)
             self._mode.__enter__()
         except BaseException:
             self._restore()

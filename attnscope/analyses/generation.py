@@ -19,14 +19,14 @@ sequence gives, row for row.
 
 from __future__ import annotations
 
-import fnmatch
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
-from attnscope.errors import OptionError, ShapeError, suggest
+from attnscope.errors import ShapeError
+from attnscope.names import select_by_name
 from attnscope.records import AttentionRecord
 
 __all__ = ["StitchedMap", "stitch_steps"]
@@ -78,7 +78,7 @@ def stitch_steps(cap: Any, *, layers: str | Sequence[str] | None = None) -> dict
 
     Args:
         cap: a capture (or list of records) of one decoding run, with maps kept.
-        layers: module-name patterns (fnmatch) to stitch; default every recorded module.
+        layers: module-name patterns (see :mod:`attnscope.names`) to stitch; default every recorded module.
 
     Returns:
         ``{module name: StitchedMap}`` in the order modules were first called. Self-attention rows must continue
@@ -87,14 +87,7 @@ def stitch_steps(cap: Any, *, layers: str | Sequence[str] | None = None) -> dict
         :class:`~attnscope.errors.ShapeError` naming the call.
     """
     records = list(cap.attention if hasattr(cap, "attention") else cap)
-    if layers is not None:
-        patterns = [layers] if isinstance(layers, str) else list(layers)
-        names = sorted({r.name for r in records})
-        for p in patterns:
-            if not any(fnmatch.fnmatchcase(n, p) for n in names):
-                raise OptionError(f"layers= names {p!r}, which matches no recorded attention module."
-                                  f"{suggest(p, names)}")
-        records = [r for r in records if any(fnmatch.fnmatchcase(r.name, p) for p in patterns)]
+    records = select_by_name(records, layers)
     groups: dict[str, list[AttentionRecord]] = {}
     for rec in sorted(records, key=lambda r: r.call):
         groups.setdefault(rec.name, []).append(rec)

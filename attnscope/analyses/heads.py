@@ -32,7 +32,6 @@ other, so each comparison is over the same inputs.
 
 from __future__ import annotations
 
-import fnmatch
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, NamedTuple
@@ -46,6 +45,7 @@ from attnscope.analyses.ablation import AttentionCall, observe_heads
 from attnscope.analyses.similarity import head_distances
 from attnscope.capture import record_sums
 from attnscope.errors import OptionError, ShapeError, UnsupportedModelError, suggest
+from attnscope.names import name_matches
 from attnscope.records import AttentionRecord, HeadSums
 
 __all__ = [
@@ -158,7 +158,7 @@ def _is_projection(module: nn.Module) -> bool:
 
 def _find_projection(model: nn.Module, name: str, chosen: Sequence[tuple[str, str]]) -> tuple[str, nn.Module]:
     for pattern, target in chosen:
-        if fnmatch.fnmatchcase(name, pattern):
+        if name_matches(name, pattern):
             return target, model.get_submodule(target)
     places = [name] if name == "" else [name, name.rsplit(".", 1)[0] if "." in name else ""]
     for place in places:

@@ -23,7 +23,6 @@ True
 
 from __future__ import annotations
 
-import fnmatch
 from collections.abc import Callable, Sequence
 from typing import Any
 
@@ -31,7 +30,8 @@ import numpy as np
 import pandas as pd
 
 from attnscope.capture import record_sums
-from attnscope.errors import OptionError, suggest
+from attnscope.errors import OptionError
+from attnscope.names import select_by_name
 from attnscope.records import AttentionRecord
 
 __all__ = ["Causal", "declared_causal", "leak_summary", "leak_table"]
@@ -52,7 +52,7 @@ def declared_causal(records: Sequence[AttentionRecord], causal: Causal = None) -
     """For each record, whether it is to be held to a causal mask.
 
     ``None``: the records capture saw a causal mask applied in. ``True``/``False``: every self-attention
-    record / none. Patterns (``"decoder.*"`` or a list of them, fnmatch on module names): the *self*-attention
+    record / none. Patterns (``"decoder.*"`` or a list of them, see :mod:`attnscope.names`): the *self*-attention
     records of matching modules; cross-attention is left out, since its keys are another sequence and a
     decoder's cross-attention may see the whole source. A callable gets each record and decides for itself.
     """
@@ -65,12 +65,8 @@ def declared_causal(records: Sequence[AttentionRecord], causal: Causal = None) -
     patterns = [causal] if isinstance(causal, str) else list(causal)
     if not all(isinstance(p, str) for p in patterns):
         raise OptionError(f"causal= takes True, module-name patterns or a predicate; received {causal!r}")
-    names = {r.name for r in records}
-    for p in patterns:
-        if not any(fnmatch.fnmatchcase(n, p) for n in names):
-            raise OptionError(f"causal= names {p!r}, which matches no recorded attention module."
-                              f"{suggest(p, sorted(names))}")
-    return [r.kind == "self" and any(fnmatch.fnmatchcase(r.name, p) for p in patterns) for r in records]
+    chosen = {id(r) for r in select_by_name(records, patterns, option="causal=")}
+    return [r.kind == "self" and id(r) in chosen for r in records]
 
 
 def _future(rec: AttentionRecord) -> np.ndarray:

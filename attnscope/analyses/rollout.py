@@ -15,13 +15,13 @@ averaged, is mixed with the identity for the residual connection and its rows re
 
 from __future__ import annotations
 
-import fnmatch
 from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
 
-from attnscope.errors import OptionError, ShapeError, suggest
+from attnscope.errors import OptionError, ShapeError
+from attnscope.names import select_by_name
 from attnscope.records import AttentionRecord
 
 __all__ = ["attention_rollout", "rollout_records"]
@@ -30,18 +30,11 @@ __all__ = ["attention_rollout", "rollout_records"]
 def rollout_records(cap: Any, layers: str | Sequence[str] | None = None) -> list[AttentionRecord]:
     """The records rollout multiplies: self-attention with maps over the full sequence, in call order.
 
-    *layers* are module-name patterns (fnmatch); default every such record. For an encoder–decoder model
+    *layers* are module-name patterns (see :mod:`attnscope.names`); default every such record. For an encoder–decoder model
     pick one stack (``layers="encoder.*"``): rollout follows one sequence through its own layers.
     """
     records = list(cap.attention if hasattr(cap, "attention") else cap)
-    if layers is not None:
-        patterns = [layers] if isinstance(layers, str) else list(layers)
-        names = sorted({r.name for r in records})
-        for p in patterns:
-            if not any(fnmatch.fnmatchcase(n, p) for n in names):
-                raise OptionError(f"layers= names {p!r}, which matches no recorded attention module."
-                                  f"{suggest(p, names)}")
-        records = [r for r in records if any(fnmatch.fnmatchcase(r.name, p) for p in patterns)]
+    records = select_by_name(records, layers)
     chosen = [r for r in records if r.kind == "self" and r.queries == r.keys and r.query_offset == 0]
     if not chosen:
         raise ShapeError("rollout needs self-attention records over the whole sequence (queries = keys); "

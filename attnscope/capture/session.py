@@ -10,13 +10,11 @@ AttentionRecord(name='self_attn', kind='self', weights=(2, 2, 5, 5), causal=Fals
 
 from __future__ import annotations
 
-import functools
 import inspect
-import re
 import threading
 import warnings
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -37,6 +35,7 @@ from attnscope.errors import (
     UnsupportedModelError,
     suggest,
 )
+from attnscope.names import name_matches, within
 from attnscope.records import STAT_COLUMNS, AttentionRecord, HeadSums, ResidualRecord
 from attnscope.stats import head_sums
 
@@ -46,7 +45,7 @@ KEEP_MODES = ("maps", "stats")
 DEFAULT_MAX_BYTES = 2 * 1024**3  # 2 GiB of kept maps
 _STATS_CHUNK_BYTES = 4 * 1024**2  # keep="stats" never builds more than this much of a map at once
 
-_SOFTMAX_FUNCS = {F.softmax, torch.softmax, torch.Tensor.softmax, torch.special.softmax}
+SOFTMAX_FUNCS = {F.softmax, torch.softmax, torch.Tensor.softmax, torch.special.softmax}
 _MHA_SIGNATURE = inspect.signature(F.multi_head_attention_forward)
 _SDPA_PARAMS = ("query", "key", "value", "attn_mask", "dropout_p", "is_causal", "scale", "enable_gqa")
 # forward keywords that carry the other sequence of a cross-attention call
@@ -54,20 +53,6 @@ _CROSS_KWARGS = ("key_value_states", "encoder_hidden_states", "memory", "context
                  "encoder_output", "cross_states", "kv")
 _CROSS_NAME = ("cross", "encoder_attn", "encdec", "enc_dec", "multihead_attn")
 
-
-
-@functools.lru_cache(maxsize=256)
-def _pattern(pattern: str) -> re.Pattern:
-    """Module-name glob: ``*`` and ``?`` stay within one dotted part, ``**`` crosses dots."""
-    out = []
-    for part in re.split(r"(\*\*|\*|\?)", pattern):
-        out.append({"**": ".*", "*": "[^.]*", "?": "[^.]"}.get(part, re.escape(part)))
-    return re.compile("".join(out) + r"\Z")
-
-
-def name_matches(name: str, pattern: str) -> bool:
-    """Whether dotted module *name* matches *pattern* (see :func:`_pattern`)."""
-    return _pattern(pattern).match(name) is not None
 
 
 _active_lock = threading.Lock()
@@ -112,22 +97,29 @@ class _Counters:
     recorded_in: set[str] = field(default_factory=set)
 
 
-class _Interceptor(TorchFunctionMode):
-    """Sees torch function calls while a capture is open and hands attention calls to its capture."""
+class RoutingMode(TorchFunctionMode):
+    """A torch function mode that hands chosen torch functions to handlers and runs every other call unchanged.
 
-    def __init__(self, owner: Capture) -> None:
+    ``routes`` maps a torch function to ``handler(func, args, kwargs)``. Capture and the head interventions of
+    :mod:`attnscope.analyses.ablation` both see attention calls this way.
+    """
+
+    def __init__(self, routes: Mapping[Any, Any]) -> None:
         super().__init__()
-        self.owner = owner
+        self.routes = dict(routes)
 
     def __torch_function__(self, func, types, args=(), kwargs=None):
-        kwargs = kwargs or {}
-        if func is F.scaled_dot_product_attention:
-            return self.owner._on_sdpa(func, args, kwargs)
-        if func is F.multi_head_attention_forward:
-            return self.owner._on_mha(func, args, kwargs)
-        if func in _SOFTMAX_FUNCS:
-            return self.owner._on_softmax(func, args, kwargs)
-        return func(*args, **kwargs)
+        handler = self.routes.get(func)
+        if handler is None:
+            return func(*args, **(kwargs or {}))
+        return handler(func, args, kwargs or {})
+
+
+def attention_routes(owner: Any) -> dict[Any, Any]:
+    """Routes of the attention entry points to ``owner._on_sdpa``, ``owner._on_mha`` and ``owner._on_softmax``."""
+    routes = {F.scaled_dot_product_attention: owner._on_sdpa, F.multi_head_attention_forward: owner._on_mha}
+    routes.update({f: owner._on_softmax for f in SOFTMAX_FUNCS})
+    return routes
 
 
 class Capture:
@@ -178,7 +170,7 @@ class Capture:
         self._tls = threading.local()
         self._c = _Counters()
         self._handles: list[Any] = []
-        self._mode: _Interceptor | None = None
+        self._mode: RoutingMode | None = None
         self._fastpath = False  # whether this capture holds the fast-path switch off
         self._thread: int | None = None
         self._table: Any = None
@@ -263,7 +255,7 @@ class Capture:
                 self._handles.append(module.register_forward_pre_hook(self._pre_hook(name), with_kwargs=True))
                 self._handles.append(module.register_forward_hook(self._post_hook(name, name in blocks),
                                                                   always_call=True))
-            self._mode = _Interceptor(self)
+            self._mode = RoutingMode(attention_routes(self))
             self._mode.__enter__()
             with _active_lock:
                 _active.append(self)
@@ -352,7 +344,7 @@ class Capture:
 
     def _kind_hint(self, name: str, module: nn.Module, args: tuple, kwargs: dict) -> str | None:
         for pattern, kind in self._kinds:
-            if name_matches(name, pattern):
+            if within(name, pattern):
                 return kind
         if getattr(module, "is_cross_attention", False):
             return "cross"

@@ -29,7 +29,6 @@ import torch.nn.functional as F
 from torch import nn
 
 from attnscope.demo import heads_specimen, shipped, task
-from attnscope.demo.decoder_only import DecoderOnly
 from attnscope.errors import OptionError, suggest
 
 __all__ = [

@@ -23,7 +23,6 @@ import warnings
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 from bokeh.embed import file_html
 from bokeh.layouts import column, row
 from bokeh.models import CheckboxGroup, ColumnDataSource, CustomJS, Select
