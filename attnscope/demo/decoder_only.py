@@ -29,7 +29,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from attnscope.demo.task import VOCAB, Vocab
+from attnscope.demo.task import VOCAB, Vocab, greedy_continue
 
 __all__ = ["DecoderOnly", "DecoderOnlyConfig", "MaskedSelfAttention", "causal_mask", "off_by_one_mask"]
 
@@ -126,14 +126,6 @@ class DecoderOnly(nn.Module):
     @torch.no_grad()
     def generate(self, prompt: torch.Tensor, max_new: int | None = None) -> torch.Tensor:
         """Greedy continuation of equal-length prompts ``(B, P)``: ``(B, N)`` new ids, ``<pad>`` after ``<eos>``."""
-        max_new = max_new or self.config.max_len - prompt.shape[1]
-        out = prompt
-        done = torch.zeros(prompt.shape[0], dtype=torch.bool, device=prompt.device)  # (B,)
-        for _ in range(max_new):
-            nxt = self(out)[:, -1].argmax(-1)  # (B,)
-            nxt = torch.where(done, torch.full_like(nxt, self.config.pad_id), nxt)
-            out = torch.cat([out, nxt[:, None]], dim=1)  # (B, t + 1)
-            done |= nxt == self.config.eos_id
-            if bool(done.all()):
-                break
+        c = self.config
+        out = greedy_continue(self, prompt, max_new or c.max_len - prompt.shape[1], c.pad_id, c.eos_id)
         return out[:, prompt.shape[1]:]

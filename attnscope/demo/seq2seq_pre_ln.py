@@ -32,7 +32,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from attnscope.demo.task import VOCAB, Vocab
+from attnscope.demo.task import VOCAB, Vocab, greedy_continue
 
 __all__ = ["GUIDED_HEAD", "PreLNConfig", "PreLNSeq2Seq", "SDPAttention"]
 
@@ -203,14 +203,6 @@ class PreLNSeq2Seq(nn.Module):
     @torch.no_grad()
     def generate(self, src: torch.Tensor, max_len: int | None = None) -> torch.Tensor:
         """Greedy decoding: ``(B, T)`` pick-path ids (without ``<bos>``), ``<pad>`` after each row's ``<eos>``."""
-        max_len = max_len or self.config.max_len
-        out = torch.full((src.shape[0], 1), self.config.bos_id, dtype=torch.long, device=src.device)  # (B, 1)
-        done = torch.zeros(src.shape[0], dtype=torch.bool, device=src.device)  # (B,)
-        for _ in range(max_len - 1):
-            nxt = self(src, out)[:, -1].argmax(-1)  # (B,)
-            nxt = torch.where(done, torch.full_like(nxt, self.config.pad_id), nxt)
-            out = torch.cat([out, nxt[:, None]], dim=1)  # (B, t + 1)
-            done |= nxt == self.config.eos_id
-            if bool(done.all()):
-                break
-        return out[:, 1:]
+        c = self.config
+        start = torch.full((src.shape[0], 1), c.bos_id, dtype=torch.long, device=src.device)  # (B, 1)
+        return greedy_continue(lambda out: self(src, out), start, (max_len or c.max_len) - 1, c.pad_id, c.eos_id)[:, 1:]

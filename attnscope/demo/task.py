@@ -54,6 +54,7 @@ __all__ = [
     "VOCAB",
     "Vocab",
     "build_example",
+    "greedy_continue",
     "lm_batch",
     "lm_sequence",
     "make_examples",
@@ -250,3 +251,23 @@ def lm_batch(examples: Sequence[Example]) -> tuple[torch.Tensor, torch.Tensor]:
     ids = pad_batch([VOCAB.encode(s) for s in seqs])  # (B, T)
     prompt_len = torch.tensor([s.index(DIVIDER) + 1 for s in seqs], dtype=torch.long)  # (B,)
     return ids, prompt_len
+
+
+def greedy_continue(next_logits, start: torch.Tensor, steps: int, pad_id: int = VOCAB.pad_id,
+                    eos_id: int = VOCAB.eos_id) -> torch.Tensor:
+    """Greedy decoding shared by the demo models: extend ``start`` (B, T0) by up to *steps* argmax tokens.
+
+    ``next_logits(ids)`` returns ``(B, T, V)`` logits for ids ``(B, T)``; a row that has produced ``<eos>``
+    continues with ``<pad>``, and decoding stops once every row has. Returns ``(B, T0 + n)``.
+    """
+    out = start
+    done = torch.zeros(start.shape[0], dtype=torch.bool, device=start.device)  # (B,)
+    with torch.no_grad():
+        for _ in range(steps):
+            nxt = next_logits(out)[:, -1].argmax(-1)  # (B,)
+            nxt = torch.where(done, torch.full_like(nxt, pad_id), nxt)
+            out = torch.cat([out, nxt[:, None]], dim=1)  # (B, t + 1)
+            done |= nxt == eos_id
+            if bool(done.all()):
+                break
+    return out
