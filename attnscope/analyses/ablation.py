@@ -44,7 +44,8 @@ import torch.nn.functional as F
 from torch import nn
 
 from attnscope.capture.discovery import map_model
-from attnscope.capture.session import RoutingMode, attention_routes
+from attnscope.capture.session import (RoutingMode, attention_routes, hold_fastpath_off, release_fastpath,
+                                      remove_mode)
 from attnscope.errors import NoAttentionError, OptionError, UnsupportedModelError, suggest
 
 __all__ = ["AttentionCall", "HeadAblation", "HeadIntervention", "ablate", "ablation_change", "head_importance",
@@ -115,7 +116,7 @@ class HeadIntervention:
         self._tls = threading.local()
         self._handles: list[Any] = []
         self._mode: RoutingMode | None = None
-        self._fastpath: bool | None = None
+        self._fastpath = False  # whether this intervention holds the fast-path switch off
         self._used = False
         self.seen = _Seen()
 
@@ -125,9 +126,9 @@ class HeadIntervention:
             raise OptionError("this intervention was already used; make a new one")
         self._used = True
         try:
-            self._fastpath = torch.backends.mha.get_fastpath_enabled()
             # the fused nn.MultiheadAttention / TransformerEncoderLayer paths run in C++ and would hide the heads
-            torch.backends.mha.set_fastpath_enabled(False)
+            hold_fastpath_off()
+            self._fastpath = True
             for name, module in self._model.named_modules():
                 self._handles.append(module.register_forward_pre_hook(self._pre_hook(name)))
                 self._handles.append(module.register_forward_hook(self._post_hook(), always_call=True))
@@ -148,14 +149,14 @@ class HeadIntervention:
         try:
             if self._mode is not None:
                 mode, self._mode = self._mode, None
-                mode.__exit__(None, None, None)
+                remove_mode(mode)
         finally:
             for h in self._handles:
                 h.remove()
             self._handles.clear()
-            if self._fastpath is not None:
-                torch.backends.mha.set_fastpath_enabled(self._fastpath)
-                self._fastpath = None
+            if self._fastpath:
+                self._fastpath = False
+                release_fastpath()
 
     # ---------------------------------------------------------------- who is calling
     def _stack(self) -> list[_Frame]:

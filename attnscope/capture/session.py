@@ -60,7 +60,8 @@ _active: list[Capture] = []  # open captures, for tap()
 _fastpath_state = {"holders": 0, "saved": True}  # the MHA fast path stays off while any capture is open
 
 
-def _fastpath_hold() -> None:
+def hold_fastpath_off() -> None:
+    """Turn the MHA fast path off until every holder has released it (the first holder saves the setting)."""
     with _active_lock:
         if _fastpath_state["holders"] == 0:
             _fastpath_state["saved"] = torch.backends.mha.get_fastpath_enabled()
@@ -68,7 +69,8 @@ def _fastpath_hold() -> None:
         _fastpath_state["holders"] += 1
 
 
-def _fastpath_release() -> None:
+def release_fastpath() -> None:
+    """Release :func:`hold_fastpath_off`; the last holder puts the saved setting back."""
     with _active_lock:
         _fastpath_state["holders"] -= 1
         if _fastpath_state["holders"] == 0:
@@ -248,7 +250,7 @@ class Capture:
         try:
             # The fused fast paths of nn.MultiheadAttention / nn.TransformerEncoder(Layer) run in C++ and would
             # hide the attention (and consume padding masks via nested tensors); the Python path computes the same.
-            _fastpath_hold()
+            hold_fastpath_off()
             self._fastpath = True
             blocks = set(self._blocks)
             for name, module in self._model.named_modules():
@@ -278,14 +280,14 @@ class Capture:
                     _active.remove(self)
             if self._mode is not None:
                 mode, self._mode = self._mode, None
-                _remove_mode(mode)
+                remove_mode(mode)
         finally:
             for h in self._handles:
                 h.remove()
             self._handles.clear()
             if self._fastpath:
                 self._fastpath = False
-                _fastpath_release()
+                release_fastpath()
             self._state = "closed"
 
     def _finish(self) -> None:
@@ -646,7 +648,7 @@ def _take(w: torch.Tensor, sl: slice, hs: list[int], shared: bool) -> torch.Tens
     return part.float().contiguous()
 
 
-def _remove_mode(mode: TorchFunctionMode) -> None:
+def remove_mode(mode: TorchFunctionMode) -> None:
     """Take *mode* off this thread's torch function mode stack, wherever it is, keeping the others in order.
 
     Captures are usually closed in the reverse order of opening, but a generator closed late or a block

@@ -161,3 +161,20 @@ def test_tap_error_inside_forward_leaves_nothing_behind():
         with attnscope.capture(m):
             m(torch.randn(1, 1, 3, 4))
     assert not m._forward_hooks and torch._C._len_torch_function_stack() == 0
+
+
+def test_ablation_inside_a_capture_closed_out_of_order_restores_everything():
+    from attnscope.analyses.ablation import ablate
+
+    model = encoder()
+    cap = attnscope.capture(model)
+    cap.__enter__()
+    block = ablate(model, [("layers.0.self_attn", 1)])
+    block.__enter__()
+    with torch.no_grad():
+        model(X)
+    cap.__exit__(None, None, None)  # the capture leaves first, the ablation is still on
+    assert torch.backends.mha.get_fastpath_enabled() is False and torch._C._len_torch_function_stack() == 1
+    block.__exit__(None, None, None)
+    assert torch.backends.mha.get_fastpath_enabled() is True and torch._C._len_torch_function_stack() == 0
+    assert len(cap.attention) == 2
