@@ -1,7 +1,12 @@
-"""Regenerate the README picture: ``python tests/views/readme_picture.py`` writes docs/images/dashboard.png.
+"""Regenerate the README pictures: ``python tests/views/readme_picture.py`` writes docs/images/*.png.
 
-The README's own dashboard example (the bundled seq2seq demo model) runs in a headless JupyterLab, a causal
-decoder head is chosen in the head dropdown, and the widget is photographed in Debian Chromium.
+Each story's dashboard runs in a headless JupyterLab on a bundled demo model, a head is chosen in the head
+dropdown, and the widget is photographed in Debian Chromium:
+
+* ``dashboard.png`` — the README's own seq2seq example, a causal decoder head;
+* ``story_causal.png`` — the decoder trained with an off-by-one mask: the lens shows weight just above the
+  diagonal, and the checks table holds the behavioural probe's report;
+* ``story_heads.png`` — the heads specimen with its dead and duplicate head findings, the uniform head selected.
 """
 
 from __future__ import annotations
@@ -32,28 +37,60 @@ attnscope.dashboard(cap, tokens=tokens, findings=findings)
 '''
 HEAD = "transformer.decoder.layers.1.self_attn · head 2"
 
+CAUSAL_CELL = '''\
+import torch, attnscope
+from attnscope.demo import load, task
+
+model = load("decoder_only_leaky")
+ids, _ = task.lm_batch(task.make_examples(2, seed=0, split="held_out"))
+with torch.no_grad(), attnscope.capture(model) as cap:
+    model(ids)
+report = attnscope.check_causal(model, ids)
+attnscope.dashboard(cap, tokens=[model.vocab.decode(row) for row in ids], checks=[report])
+'''
+CAUSAL_HEAD = "blocks.0.attn · head 0"
+
+HEADS_CELL = '''\
+import torch, attnscope
+from attnscope.demo import load, task
+
+model = load("heads_specimen")
+ids, _ = task.lm_batch(task.make_examples(16, seed=3, split="held_out"))
+with torch.no_grad(), attnscope.capture(model) as cap:
+    model(ids)
+findings = {"dead heads": attnscope.dead_heads(cap, output_norms=attnscope.head_output_norms(model, ids)),
+            "duplicate heads": attnscope.duplicate_heads(cap)}
+attnscope.dashboard(cap, tokens=[model.vocab.decode(row) for row in ids], findings=findings)
+'''
+HEADS_HEAD = "blocks.1.attn · head 1"
+
+PICTURES = (("dashboard", README_CELL, HEAD), ("story_causal", CAUSAL_CELL, CAUSAL_HEAD),
+            ("story_heads", HEADS_CELL, HEADS_HEAD))
+
 
 def main() -> None:
     from playwright.sync_api import sync_playwright
 
     root = HERE.parents[1]
-    shot = root / "artifacts" / "dashboard_readme.png"
-    shot.parent.mkdir(exist_ok=True)
+    (root / "artifacts").mkdir(exist_ok=True)
     work = Path(tempfile.mkdtemp(prefix="attnscope-picture-"))
     with jupyter_lab(work / "lab") as lab, sync_playwright() as p, \
             chromium(p, work / "profile", width=1900, height=2200) as ctx:
-        views_notebooks.write(lab["root"] / "readme.ipynb", README_CELL)
-        page = ctx.new_page()
-        open_notebook(page, lab, "readme")
-        run_all(page)
-        board = page.locator(".jp-NotebookPanel:not(.lm-mod-hidden) .jp-OutputArea-output .as-dashboard")
-        board.locator(".as-plot canvas").first.wait_for(state="visible", timeout=90_000)
-        board.locator(".as-head select").select_option(label=HEAD)
-        board.locator(".as-status", has_text=HEAD).wait_for(timeout=30_000)
-        page.wait_for_timeout(1500)  # let every figure repaint
-        board.screenshot(path=str(shot))
-    shutil.copyfile(shot, root / "docs" / "images" / "dashboard.png")
-    print(root / "docs" / "images" / "dashboard.png")
+        for name, cell, head in PICTURES:
+            views_notebooks.write(lab["root"] / f"{name}.ipynb", cell)
+            page = ctx.new_page()
+            open_notebook(page, lab, name)
+            run_all(page)
+            board = page.locator(".jp-NotebookPanel:not(.lm-mod-hidden) .jp-OutputArea-output .as-dashboard")
+            board.locator(".as-plot canvas").first.wait_for(state="visible", timeout=90_000)
+            board.locator(".as-head select").select_option(label=head)
+            board.locator(".as-status", has_text=head).wait_for(timeout=30_000)
+            page.wait_for_timeout(1500)  # let every figure repaint
+            shot = root / "artifacts" / f"{name}_readme.png"
+            board.screenshot(path=str(shot))
+            shutil.copyfile(shot, root / "docs" / "images" / f"{name}.png")
+            print(root / "docs" / "images" / f"{name}.png")
+            page.close()
 
 
 if __name__ == "__main__":
