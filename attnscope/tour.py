@@ -112,7 +112,7 @@ def _causality(result: TourResult, examples: list[task.Example]) -> None:
     ids, _ = task.lm_batch(examples[:2])
     for name in ("decoder_only", "decoder_only_leaky"):
         model = load(name)
-        loss_acc = lm_generation_accuracy(model, examples)
+        accuracy = lm_generation_accuracy(model, examples)
         report = check_causal(model, ids)
         if report.ok:
             text = "no output position depends on a later input"
@@ -120,7 +120,7 @@ def _causality(result: TourResult, examples: list[task.Example]) -> None:
             i, j, m = report.violations[0]
             text = (f"LEAK: output position {i} depends on later input {j} (x{m:.3g} of the output scale); "
                     f"{len(report.leaking_outputs)} output positions found leaking; brought in by '{report.blame}'")
-        result.say(f"   {name:<19} free-running accuracy {loss_acc:6.1%}; check_causal: {text}")
+        result.say(f"   {name:<19} free-running accuracy {accuracy:6.1%}; check_causal: {text}")
         expect_ok = name == "decoder_only"
         result.expect("check_causal", name, report.ok == expect_ok, "passes" if report.ok else text)
 

@@ -85,7 +85,6 @@ class _Frame:
     module: nn.Module
     kind_hint: str | None
     selected: bool
-    recorded: bool = False
     last_softmax: Any = None  # (output tensor, record index) of the latest softmax seen in this frame
 
 
@@ -322,8 +321,8 @@ class Capture:
                 self._c.foreign += 1  # the torch function mode is per thread: this call cannot be seen
                 return None
             stack = self._stack()
-            selected = (self._selected is None or name in self._selected
-                        or bool(stack and stack[-1].selected and self._selected is not None))
+            # a module is selected when named, or when it runs inside a selected one
+            selected = self._selected is None or name in self._selected or bool(stack and stack[-1].selected)
             stack.append(_Frame(name, module, self._kind_hint(name, module, args, kwargs), selected))
             if selected and name in self._map.attention:
                 self._c.ran.add(name)
