@@ -1,51 +1,18 @@
 """Find, before any forward runs, where a model keeps its attention and its transformer blocks.
 
-Attention is found three ways, and a module found any way is an *attention module*:
-
-* instances of ``nn.MultiheadAttention``;
-* modules whose class name says attention (``...Attention``, ``...Attn...``), as HF and most hand-written code name them;
-* modules whose ``forward`` source calls ``scaled_dot_product_attention``, ``softmax`` or :func:`attnscope.tap`.
-
-Blocks (whose outputs are the residual stream) are ``nn.TransformerEncoderLayer`` / ``nn.TransformerDecoderLayer``
-and the elements of any ``nn.ModuleList`` whose elements each hold an attention module below them.
+What counts as an attention module or a block is decided by :mod:`attnscope.capture.rules` (its docstring is
+the table); this module walks the model once and applies those rules.
 """
 
 from __future__ import annotations
 
-import functools
-import inspect
-import re
 from dataclasses import dataclass
 
 from torch import nn
 
-__all__ = ["ModelMap", "map_model"]
+from attnscope.capture.rules import NN_LAYERS, is_attention_module
 
-_ATTN_CLASS = re.compile(r"attention|attn", re.IGNORECASE)
-_ATTN_SOURCE = re.compile(r"scaled_dot_product_attention|softmax\(|\btap\(")
-_NN_LAYERS = (nn.TransformerEncoderLayer, nn.TransformerDecoderLayer)
-
-
-@functools.lru_cache(maxsize=512)
-def _forward_mentions_attention(cls: type) -> bool:
-    forward = cls.__dict__.get("forward")
-    if forward is None or cls.__module__.startswith("torch.nn"):
-        return False
-    try:
-        source = inspect.getsource(forward)
-    except (OSError, TypeError):
-        return False
-    return bool(_ATTN_SOURCE.search(source))
-
-
-def is_attention_module(module: nn.Module) -> bool:
-    """Whether *module* is an attention module by the rules in this module's docstring."""
-    if isinstance(module, nn.MultiheadAttention):
-        return True
-    cls = type(module)
-    if isinstance(module, (nn.ModuleList, nn.ModuleDict, nn.Sequential)):
-        return False
-    return bool(_ATTN_CLASS.search(cls.__name__)) or _forward_mentions_attention(cls)
+__all__ = ["ModelMap", "is_attention_module", "map_model"]
 
 
 @dataclass(frozen=True)
@@ -86,7 +53,7 @@ def map_model(model: nn.Module) -> ModelMap:
     for name, module in named:
         if names[id(module)] != name:
             continue
-        if isinstance(module, _NN_LAYERS):
+        if isinstance(module, NN_LAYERS):
             blocks.append(name)
             if not module.self_attn.batch_first:
                 seq_first.add(name)
