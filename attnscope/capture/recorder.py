@@ -32,13 +32,34 @@ Compute = Callable[[slice, list], torch.Tensor]
 
 @dataclass
 class Frame:
-    """One module call on a capture's call stack."""
+    """One module call on a capture's call stack.
+
+    ``owner`` is the frame of the attention module this call's attention is recorded under (itself, the
+    enclosing attention module for a helper or any child of it, or None outside every attention module).
+    """
 
     name: str
     module: nn.Module
     kind_hint: str | None
     selected: bool
     last_softmax: Any = None  # (output tensor, record index) of the latest softmax seen in this frame
+    owner: Frame | None = None
+    others: tuple = ()  # floating tensor arguments that may carry another sequence (rules.other_sequences)
+    consumed_other: bool = False  # a child module consumed one of ``others``: keys come from another sequence
+
+    def target(self) -> Frame:
+        """The frame a record of an attention call in this frame is named after."""
+        return self.owner or self
+
+    def kind(self) -> str:
+        """``"self"``/``"cross"`` of an attention call in this frame, by the rules of :mod:`attnscope.capture.rules`."""
+        t = self.target()
+        return t.kind_hint or ("cross" if t.consumed_other else "self")
+
+    def known_kind(self) -> str | None:
+        """The kind when a rule decided it, else None (the path may decide, as MHA does from its arguments)."""
+        t = self.target()
+        return t.kind_hint or ("cross" if t.consumed_other else None)
 
 
 @dataclass
@@ -67,6 +88,7 @@ class Recorder:
         self.counters = _Counters()
         self.thread: int | None = None
         self.open = False
+        self.muted = 0  # > 0 while an attnscope computation runs the model inside this capture (session.muted)
         self._tls = threading.local()
 
     # ---------------------------------------------------------------- hooks: who is calling
@@ -83,10 +105,21 @@ class Recorder:
                 self.counters.foreign += 1  # the torch function mode is per thread: this call cannot be seen
                 return None
             stack = self._stack()
+            parent = stack[-1] if stack else None
             # a module is selected when named, or when it runs inside a selected one
-            selected = self.selected is None or name in self.selected or bool(stack and stack[-1].selected)
-            stack.append(Frame(name, module, rules.kind_hint(name, module, args, kwargs, self.kinds), selected))
-            if selected and name in self.map.attention:
+            selected = self.selected is None or name in self.selected or bool(parent and parent.selected)
+            frame = Frame(name, module, rules.kind_hint(name, module, args, kwargs, self.kinds), selected,
+                          others=rules.other_sequences(module, args))
+            owner_name = self.map.owner.get(name)
+            if owner_name == name:
+                frame.owner = frame
+            elif owner_name is not None:
+                frame.owner = next((f for f in reversed(stack) if f.name == owner_name), None) or (
+                    parent.owner if parent else None)
+            if parent is not None:
+                _note_consumed(parent, args)
+            stack.append(frame)
+            if selected and name in self.map.attention and not self.muted:
                 self.counters.ran.add(name)
             return None
         return hook
@@ -101,13 +134,15 @@ class Recorder:
                 frame = stack.pop()
                 if frame.module is module:
                     break
-            if is_block and self.open:
+            if is_block and self.open and not self.muted:
                 self.record_residual(name, output)
             return None
         return hook
 
     def frame(self) -> Frame | None:
-        """The innermost module call on this thread, or None outside the model."""
+        """The innermost module call on this thread, or None outside the model (and while muted)."""
+        if self.muted:
+            return None
         stack = getattr(self._tls, "stack", None)
         return stack[-1] if stack else None
 
@@ -129,6 +164,8 @@ class Recorder:
         earlier record of the same call (a ``tap`` of a softmax's output).
         """
         b, _, tq, tk = shape
+        target = frame.target()
+        helper = frame.name if target is not frame else None
         if allowed is not None and allowed.shape[1] > 1:
             allowed = allowed[:, list(heads)]
         per_item = len(heads) * tq * tk * 4  # float32 bytes of one batch item's kept map
@@ -136,7 +173,7 @@ class Recorder:
             size = b * per_item
             if replace_at is None and self.counters.kept_bytes + size > self.max_bytes:
                 raise MemoryBudgetError(
-                    f"keeping the maps of '{frame.name}' ({b}x{len(heads)}x{tq}x{tk} float32 = {_mb(size)}) would "
+                    f"keeping the maps of '{target.name}' ({b}x{len(heads)}x{tq}x{tk} float32 = {_mb(size)}) would "
                     f"bring the capture to {_mb(self.counters.kept_bytes + size)}, over its budget of "
                     f"{_mb(self.max_bytes)}. Use keep='stats' (per-head statistics only), select fewer "
                     "layers=/heads=, a smaller batch, or raise max_bytes=.")
@@ -152,13 +189,13 @@ class Recorder:
         # what the mask meant (leak_mass, rows), and ``causal`` says whether it was causal.
         allowed_np = None if allowed is None or self.keep == "stats" else allowed.numpy().copy()
         index = self.counters.calls if replace_at is None else self.attention[replace_at].call
-        record = AttentionRecord(name=frame.name, kind=kind, weights=kept, allowed=allowed_np, causal=causal,
+        record = AttentionRecord(name=target.name, kind=kind, weights=kept, allowed=allowed_np, causal=causal,
                                  stats=stats, shape=shape, heads=heads, call=index, source=source,
-                                 query_offset=offset)
+                                 query_offset=offset, helper=helper)
         if replace_at is None:
             self.attention.append(record)
             self.counters.calls += 1
-            self.counters.recorded_in.add(frame.name)
+            self.counters.recorded_in.add(target.name)
             return len(self.attention) - 1
         self.attention[replace_at] = record
         return replace_at
@@ -178,6 +215,21 @@ class Recorder:
         norms = torch.linalg.vector_norm(x.float(), dim=-1).numpy().copy()  # (B, T)
         self.residual.append(ResidualRecord(name=name, norms=norms, call=self.counters.blocks))
         self.counters.blocks += 1
+
+
+def _note_consumed(parent: Frame, args: tuple) -> None:
+    """Mark the calling frames whose candidate other sequence a child module takes as its input."""
+    first = next((a for a in args if isinstance(a, torch.Tensor)), None)
+    if first is None:
+        return
+    for frame in (parent, parent.owner):
+        if frame is not None and frame.others and not frame.consumed_other:
+            try:
+                hit = any(first is o or (first.data_ptr() == o.data_ptr() and first.shape == o.shape)
+                          for o in frame.others)
+            except RuntimeError:  # tensors without plain storage (nested, sparse) are compared by identity only
+                hit = any(first is o for o in frame.others)
+            frame.consumed_other = hit
 
 
 def _reduce(compute: Compute, b: int, heads: tuple[int, ...], allowed: torch.Tensor | None, offset: int,

@@ -10,10 +10,11 @@ AttentionRecord(name='self_attn', kind='self', weights=(2, 2, 5, 5), causal=Fals
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import threading
 import warnings
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from typing import Any
 
 import numpy as np
@@ -26,6 +27,7 @@ from attnscope.capture.paths import PATHS
 from attnscope.capture.paths import tap as tap_path
 from attnscope.capture.paths.softmax import FUNCS as _SOFTMAX_FUNCS
 from attnscope.capture.recorder import Recorder
+from attnscope.capture.rules import CONTAINERS, module_label
 from attnscope.errors import (
     AttnscopeWarning,
     CaptureStateError,
@@ -39,7 +41,7 @@ from attnscope.records import STAT_COLUMNS, AttentionRecord, HeadSums, ResidualR
 from attnscope.stats import head_sums
 
 __all__ = ["Capture", "RoutingMode", "attention_routes", "capture", "head_table",
-           "hold_fastpath_off", "record_sums", "release_fastpath", "remove_mode", "tap"]
+           "hold_fastpath_off", "muted", "record_sums", "release_fastpath", "remove_mode", "tap"]
 
 KEEP_MODES = ("maps", "stats")
 DEFAULT_MAX_BYTES = 2 * 1024**3  # 2 GiB of kept maps
@@ -65,6 +67,25 @@ def release_fastpath() -> None:
         _fastpath_state["holders"] -= 1
         if _fastpath_state["holders"] == 0:
             torch.backends.mha.set_fastpath_enabled(_fastpath_state["saved"])
+
+
+@contextlib.contextmanager
+def muted() -> Iterator[None]:
+    """Captures open on this thread record nothing while the block runs; captures opened inside it do.
+
+    attnscope computations that run the model themselves (probes, head output norms, ablation sweeps,
+    aggregation) run under it, so a user's own capture of the same model gets no records of their runs.
+    """
+    with _active_lock:
+        mine = [c for c in _active if c._rec.thread == threading.get_ident()]
+        for c in mine:
+            c._rec.muted += 1
+    try:
+        yield
+    finally:
+        with _active_lock:
+            for c in mine:
+                c._rec.muted -= 1
 
 
 class RoutingMode(TorchFunctionMode):
@@ -139,6 +160,12 @@ class Capture:
                 "happens in a module of another name, name it with layers=['path.to.module'].")
         self._heads = self._check_heads(heads)
         self._blocks = self._check_blocks(blocks, all_names) if residual else ()
+        if residual and blocks is None and not self._blocks and self._blocks_expected():
+            warnings.warn(
+                f"capture found no transformer blocks in {type(model).__name__} (it has {len(self._map.leaves)} "
+                "attention modules), so no residual-stream norms will be recorded. Name the blocks whose outputs "
+                "are the residual stream with blocks=['layers.*'], or pass residual=False.",
+                AttnscopeWarning, stacklevel=3)
         self._kinds = self._check_kinds(kinds, all_names)
         self._rec = Recorder(self._map, keep=keep, max_bytes=max_bytes, selected=self._selected,
                              heads=self._heads, kinds=self._kinds)
@@ -164,7 +191,7 @@ class Capture:
                 leaves = self._map.leaves
                 if not -len(leaves) <= item < len(leaves):
                     raise OptionError(f"layers= index {item} is out of range: the model has {len(leaves)} "
-                                      f"attention modules ({', '.join(leaves[:6])}{', ...' if len(leaves) > 6 else ''})")
+                                      f"attention modules ({', '.join(map(self._label, leaves[:6]))}{', ...' if len(leaves) > 6 else ''})")
                 chosen.add(leaves[item])
                 continue
             hits = [n for n in all_names if name_matches(n, item)]
@@ -273,18 +300,44 @@ class Capture:
                           "opened the capture and were not recorded; run the forward on the capturing thread, or "
                           "open a capture in each thread", AttnscopeWarning, stacklevel=3)
         if not self.attention:
-            ran = sorted(c.ran)
-            raise NoAttentionError(
-                "the capture block ran no attention call of the model"
-                + (f": attention modules {', '.join(ran[:5])} ran but produced nothing capture can see. "
-                   "If they compute their own softmax, call attnscope.tap(weights) on it inside forward."
-                   if ran else "; call the model inside the `with` block."))
+            ran = [self._label(n) for n in sorted(c.ran)]
+            if ran:
+                detail = (f": attention modules {', '.join(ran[:5])} ran but produced nothing capture can see. "
+                          "If they compute their own softmax, call attnscope.tap(weights) on it inside forward.")
+            elif self._selected is not None and not self._selects_attention():
+                chosen = [self._label(n) for n in sorted(self._selected)]
+                detail = (f": layers= selects {', '.join(chosen[:5])}{', ...' if len(chosen) > 5 else ''}, none of "
+                          "which is or holds an attention module, and no attention call ran inside them. Select "
+                          f"attention modules (the model has {', '.join(map(self._label, self._map.leaves[:5])) or 'none capture recognises'})"
+                          ", or call attnscope.tap(weights) where the weights are computed.")
+            else:
+                detail = "; call the model inside the `with` block."
+            raise NoAttentionError("the capture block ran no attention call of the model" + detail)
         missed = [n for n in sorted(c.ran) if n in self._map.leaves
                   and not any(r == n or r.startswith(n + ".") or n.startswith(r + ".") for r in c.recorded_in)]
         if missed:
-            warnings.warn(f"attention modules {', '.join(missed)} ran but no attention weights were seen in them; "
-                          "if they compute attention by hand, call attnscope.tap(weights) there",
+            warnings.warn(f"attention modules {', '.join(map(self._label, missed))} ran but no attention weights "
+                          "were seen in them; if they compute attention by hand, call attnscope.tap(weights) there",
                           AttnscopeWarning, stacklevel=3)
+
+    def _blocks_expected(self) -> bool:
+        """Whether the model looks built of blocks capture did not find: two or more attention modules, and one
+        held by a module below the root that is neither a container nor an attention module (a layer class)."""
+        if len(self._map.leaves) < 2:
+            return False
+        modules = dict(self._model.named_modules())
+        holders = {a.rsplit(".", i)[0] for a in self._map.attention for i in range(1, a.count(".") + 1)}
+        return any(h in modules and not isinstance(modules[h], CONTAINERS) and h not in self._map.attention
+                   for h in holders)
+
+    def _label(self, name: str) -> str:
+        return module_label(name, self._model)
+
+    def _selects_attention(self) -> bool:
+        """Whether layers= names an attention module, one inside it, or a module that holds one."""
+        chosen = self._selected or set()
+        return any(a == n or a.startswith(n + ".") or n == "" or n.startswith(a + ".") or a == ""
+                   for n in chosen for a in self._map.attention)
 
     def _on_tap(self, weights: torch.Tensor, allowed: torch.Tensor | None, causal: bool | None,
                 kind: str | None) -> None:

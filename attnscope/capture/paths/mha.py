@@ -51,12 +51,12 @@ def _record(rec: Recorder, frame: Frame, a: dict, w: torch.Tensor, shared: bool)
     b, h, tq, tk = w4.shape
     query, key = a["query"], a["key"]
     same = key is query or (key.shape == query.shape and key.data_ptr() == query.data_ptr())
-    kind = frame.kind_hint or ("self" if same else "cross")
+    kind = frame.known_kind() or ("self" if same else "cross")
     mask, kpm = a["attn_mask"], a["key_padding_mask"]
     if a["is_causal"] and mask is None:
         mask = ~masks.causal_allowed(tq, tk)
     allowed = masks.compact(masks.mha_allowed(mask, kpm, b, h, tq, tk), (b, h, tq, tk))
-    heads = rec.kept_heads(h, frame.name)
+    heads = rec.kept_heads(h, frame.target().name)
     causal = bool(a["is_causal"]) or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, 0))
     rec.record(frame, kind, (b, h, tq, tk), heads, allowed, causal, SOURCE, 0,
                lambda sl, hs: take(w4, sl, hs, shared))

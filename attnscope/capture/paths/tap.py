@@ -35,14 +35,15 @@ def on_tap(rec: Recorder, weights: torch.Tensor, allowed: torch.Tensor | None, c
         except RuntimeError:
             raise ShapeError(f"tap() in '{frame.name}': allowed of shape {tuple(allowed.shape)} does not "
                              f"broadcast to the weights' {tuple(w.shape)}") from None
-    kind = kind or frame.kind_hint or "self"
+    kind = kind or frame.kind()
     offset = 0 if kind == "cross" else max(tk - tq, 0)
     allowed4 = masks.compact(allowed, (b, h, tq, tk))
     if causal is None:
         causal = kind == "self" and masks.is_causal_mask(allowed4, tq, tk, offset)
-    heads = rec.kept_heads(h, frame.name)
+    heads = rec.kept_heads(h, frame.target().name)
     replace_at = None
-    if frame.last_softmax is not None and frame.last_softmax[0] is weights:
-        replace_at = frame.last_softmax[1]  # the same tensor the softmax produced: tap refines that record
+    last = frame.target().last_softmax
+    if last is not None and last[0] is weights:
+        replace_at = last[1]  # the same tensor the softmax produced: tap refines that record
     rec.record(frame, kind, (b, h, tq, tk), heads, allowed4, bool(causal), SOURCE, offset,
                lambda sl, hs: take(w, sl, hs, shared=True), replace_at=replace_at)
