@@ -23,6 +23,7 @@ from attnscope.analyses.ablation import ablation_change, head_importance
 from attnscope.analyses.aggregate import aggregate_heads
 from attnscope.analyses.generation import stitch_steps
 from attnscope.analyses.heads import head_output_norms
+from attnscope.capture.discovery import map_model
 
 D, H = 16, 2
 
@@ -430,3 +431,138 @@ def test_the_helper_survives_save_and_load_and_older_files_still_load(tmp_path):
                 data = json.dumps(manifest).encode()
             dst.writestr(item, data)
     assert [r.helper for r in attnscope.load(old).attention] == [None, None]
+
+
+# ---------------------------------------------------------------- common public layouts, end to end
+class OneFileAttention(nn.Module):
+    """The one-file GPT layout: fused qkv, a causal buffer, a fused path and a manual path beside it."""
+
+    def __init__(self, d=D, h=H, t=16, fused=True):
+        super().__init__()
+        self.n_head, self.fused = h, fused
+        self.c_attn, self.c_proj = nn.Linear(d, 3 * d), nn.Linear(d, d)
+        self.register_buffer("bias", torch.tril(torch.ones(t, t)).view(1, 1, t, t))
+
+    def forward(self, x):
+        b, t, c = x.shape
+        q, k, v = self.c_attn(x).split(c, dim=2)
+        q, k, v = (z.view(b, t, self.n_head, c // self.n_head).transpose(1, 2) for z in (q, k, v))  # (B, H, T, Dh)
+        if self.fused:
+            y = F.scaled_dot_product_attention(q, k, v, is_causal=True)
+        else:
+            att = (q @ k.transpose(-2, -1)) * (1.0 / math.sqrt(k.size(-1)))
+            att = att.masked_fill(self.bias[:, :, :t, :t] == 0, float("-inf"))
+            att = F.softmax(att, dim=-1)
+            y = att @ v
+        return self.c_proj(y.transpose(1, 2).contiguous().view(b, t, c))
+
+
+class OneFileBlock(nn.Module):
+    def __init__(self, fused):
+        super().__init__()
+        self.ln_1, self.attn, self.ln_2 = nn.LayerNorm(D), OneFileAttention(fused=fused), nn.LayerNorm(D)
+        self.mlp = nn.Sequential(nn.Linear(D, 4 * D), nn.GELU(), nn.Linear(4 * D, D))
+
+    def forward(self, x):
+        x = x + self.attn(self.ln_1(x))
+        return x + self.mlp(self.ln_2(x))
+
+
+class OneFileGPT(nn.Module):
+    def __init__(self, fused=True):
+        super().__init__()
+        self.transformer = nn.ModuleDict(dict(wte=nn.Embedding(40, D), wpe=nn.Embedding(16, D),
+                                              h=nn.ModuleList(OneFileBlock(fused) for _ in range(2)),
+                                              ln_f=nn.LayerNorm(D)))
+        self.lm_head = nn.Linear(D, 40, bias=False)
+
+    def forward(self, idx):
+        x = self.transformer.wte(idx) + self.transformer.wpe(torch.arange(idx.shape[1]))
+        for block in self.transformer.h:
+            x = block(x)
+        return self.lm_head(self.transformer.ln_f(x))
+
+
+def test_one_file_gpt_fused_and_manual_paths_agree():
+    torch.manual_seed(0)
+    fused = OneFileGPT(fused=True).eval()
+    manual = OneFileGPT(fused=False).eval()
+    manual.load_state_dict(fused.state_dict())
+    idx = torch.randint(0, 40, (2, 9))
+    caps = {}
+    for label, model in (("fused", fused), ("manual", manual)):
+        with torch.no_grad():
+            plain = model(idx)
+            with attnscope.capture(model) as caps[label]:
+                out = model(idx)
+        torch.testing.assert_close(out, plain, atol=0, rtol=0)
+        assert [r.name for r in caps[label].attention] == ["transformer.h.0.attn", "transformer.h.1.attn"]
+        assert [r.name for r in caps[label].residual] == ["transformer.h.0", "transformer.h.1"]
+        assert all(r.kind == "self" and r.causal for r in caps[label].attention)
+    assert [r.source for r in caps["fused"].attention] == ["sdpa", "sdpa"]
+    assert [r.source for r in caps["manual"].attention] == ["softmax", "softmax"]
+    for a, b in zip(caps["fused"].attention, caps["manual"].attention):
+        np.testing.assert_allclose(a.weights, b.weights, atol=1e-6)  # reference: the model's own manual softmax
+    assert attnscope.check_causal(fused, idx, model=fused, vocab_size=40).ok
+
+
+def test_sequence_first_language_model():
+    torch.manual_seed(0)
+    emb = nn.Embedding(40, D)
+    enc = nn.TransformerEncoder(nn.TransformerEncoderLayer(D, H, 32, dropout=0.0), 2,
+                                enable_nested_tensor=False).eval()  # batch_first=False: (T, B, D)
+    src = torch.randint(0, 40, (7, 3))  # (T, B)
+    causal = nn.Transformer.generate_square_subsequent_mask(7)
+    with torch.no_grad():
+        x = emb(src)
+        plain = enc(x, mask=causal)
+        with attnscope.capture(enc) as cap:
+            out = enc(x, mask=causal)
+        # reference: torch's own MHA weights of layer 0 on the same input
+        _, ref_w = enc.layers[0].self_attn(x, x, x, attn_mask=causal, need_weights=True, average_attn_weights=False)
+    # torch's fused fast path (used without capture in eval + no_grad) and its math path differ by rounding only
+    torch.testing.assert_close(out, plain, atol=1e-5, rtol=1e-5)
+    assert [r.shape for r in cap.attention] == [(3, H, 7, 7)] * 2 and all(r.causal for r in cap.attention)
+    np.testing.assert_allclose(cap.attention[0].weights, ref_w.numpy(), atol=1e-6)
+    np.testing.assert_allclose(cap.residual[1].norms, out.norm(dim=-1).T.numpy(), rtol=1e-5)  # (B, T) from (T, B, D)
+
+
+class Generator(nn.Module):
+    """The output head of classic encoder-decoder code: a projection and a log_softmax."""
+
+    def __init__(self):
+        super().__init__()
+        self.proj = nn.Linear(D, 40)
+
+    def forward(self, x):
+        return F.log_softmax(self.proj(x), dim=-1)
+
+
+class EncoderDecoder(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.src_embed, self.tgt_embed = nn.Embedding(40, D), nn.Embedding(40, D)
+        self.core = nn.Transformer(D, H, 1, 2, 32, dropout=0.0, batch_first=True)
+        self.generator = Generator()
+
+    def forward(self, src, tgt):
+        mask = nn.Transformer.generate_square_subsequent_mask(tgt.shape[1])
+        return self.generator(self.core(self.src_embed(src), self.tgt_embed(tgt), tgt_mask=mask))
+
+
+def test_encoder_decoder_with_a_generator_head():
+    torch.manual_seed(0)
+    model = EncoderDecoder().eval()
+    src, tgt = torch.randint(0, 40, (2, 6)), torch.randint(0, 40, (2, 4))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # before: the generator's log_softmax drew a warning
+        with torch.no_grad(), attnscope.capture(model) as cap:
+            model(src, tgt)
+    assert [(r.name, r.kind, r.causal) for r in cap.attention] == [
+        ("core.encoder.layers.0.self_attn", "self", False),
+        ("core.decoder.layers.0.self_attn", "self", True),
+        ("core.decoder.layers.0.multihead_attn", "cross", False),
+        ("core.decoder.layers.1.self_attn", "self", True),
+        ("core.decoder.layers.1.multihead_attn", "cross", False),
+    ]
+    assert "generator" not in map_model(model).attention  # a log_softmax head is no attention module
