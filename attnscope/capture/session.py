@@ -156,7 +156,8 @@ class Capture:
             raise NoAttentionError(
                 f"{type(model).__name__} has no attention module capture can find: searched "
                 f"{len(all_names)} modules for nn.MultiheadAttention, classes named *Attention*/*Attn*, and "
-                "forward methods calling scaled_dot_product_attention, softmax or attnscope.tap. If attention "
+                "forward methods calling scaled_dot_product_attention, attnscope.tap, or softmax beside a matrix "
+                "product. If attention "
                 "happens in a module of another name, name it with layers=['path.to.module'].")
         self._heads = self._check_heads(heads)
         self._blocks = self._check_blocks(blocks, all_names) if residual else ()

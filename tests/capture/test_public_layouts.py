@@ -566,3 +566,40 @@ def test_encoder_decoder_with_a_generator_head():
         ("core.decoder.layers.1.multihead_attn", "cross", False),
     ]
     assert "generator" not in map_model(model).attention  # a log_softmax head is no attention module
+
+
+class ScaledDotProductAttention(nn.Module):
+    """A weight-free helper whose name says attention (the tutorial layout), with an ``nn.Softmax`` child."""
+
+    def __init__(self):
+        super().__init__()
+        self.softmax = nn.Softmax(dim=-1)
+
+    def forward(self, q, k, v):
+        return self.softmax(q @ k.transpose(-1, -2) / math.sqrt(q.shape[-1])) @ v
+
+
+class MultiHeadAttention(nn.Module):
+    def __init__(self):
+        super().__init__()
+        self.w_qs, self.w_ks, self.w_vs, self.fc = (nn.Linear(D, D) for _ in range(4))
+        self.attention = ScaledDotProductAttention()
+        self.seen = {}
+
+    def forward(self, x):
+        b, t, _ = x.shape
+        q, k, v = (w(x).view(b, t, H, D // H).transpose(1, 2) for w in (self.w_qs, self.w_ks, self.w_vs))
+        self.seen = {"q": q.detach(), "k": k.detach()}
+        return self.fc(self.attention(q, k, v).transpose(1, 2).reshape(b, t, D))
+
+
+def test_a_named_weight_free_helper_is_part_of_its_block():
+    torch.manual_seed(0)
+    model = nn.Sequential(MultiHeadAttention(), MultiHeadAttention()).eval()
+    assert map_model(model).leaves == ("0", "1")  # the helpers are not attention modules of their own
+    with torch.no_grad(), attnscope.capture(model, layers=[1]) as cap:  # indices count the blocks users know
+        model(torch.randn(2, 5, D))
+    (rec,) = cap.attention
+    assert (rec.name, rec.helper, rec.kind) == ("1", "1.attention.softmax", "self")
+    ref = reference_weights(model[1].seen["q"], model[1].seen["k"])  # reference: independent recomputation
+    np.testing.assert_allclose(rec.weights, ref, atol=1e-5)
