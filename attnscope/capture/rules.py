@@ -33,6 +33,8 @@ attention module that is not a helper    a ``functools.partial``) is an implemen
                                          the q/k/v projections is what users name and what holds ``out_proj``
 a *helper* is an attention module with   ``MultiHeadAttention`` holding a ``ScaledDotProductAttention`` (no weights)
 no parameters inside another one         is one attention module, not two; the helper is noted on the record
+only weight-free modules below a block   a child with weights (a router, an MLP inside the block) computes
+speak for it                             something else; its softmax is not the block's attention
 =======================================  ==========================================================================
 
 Attention calls (per call; see :mod:`attnscope.capture.paths` for one module per path)
@@ -201,13 +203,19 @@ def owners(named: list[tuple[str, nn.Module]], attention: set[str]) -> tuple[dic
         if has_parent and not any(True for _ in modules[name].parameters()):
             helpers.add(name)
     blocks = [a for a in attention if a not in helpers]
+    weightless = {name for name, m in named if not any(True for _ in m.parameters())}
     owner: dict[str, str] = {}
     for name, _ in named:
         best = None
         for b in blocks:
             if (b == name or _is_below(name, b)) and (best is None or len(b) > len(best)):
                 best = b
-        if best is not None:
+        if best is None:
+            continue
+        # only weight-free helpers speak for a block: a child with weights of its own (a router, an MLP)
+        # computes something else, whatever it normalises
+        child = best + "." + name[len(best) + 1 if best else 0:].split(".")[0] if best else name.split(".")[0]
+        if name == best or child in weightless:
             owner[name] = best
     return owner, frozenset(helpers)
 

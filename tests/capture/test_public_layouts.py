@@ -603,3 +603,23 @@ def test_a_named_weight_free_helper_is_part_of_its_block():
     assert (rec.name, rec.helper, rec.kind) == ("1", "1.attention.softmax", "self")
     ref = reference_weights(model[1].seen["q"], model[1].seen["k"])  # reference: independent recomputation
     np.testing.assert_allclose(rec.weights, ref, atol=1e-5)
+
+
+def test_a_router_inside_an_attention_module_is_not_its_attention():
+    class RoutedAttention(nn.Module):  # attention by hand, and a router with weights of its own beside it
+        def __init__(self):
+            super().__init__()
+            self.qk = nn.Linear(D, 2 * D)
+            self.gate = Router()
+
+        def forward(self, x):
+            b, t, _ = x.shape
+            q, k = self.qk(x).view(b, t, 2, H, D // H).permute(2, 0, 3, 1, 4)  # (B, H, T, Dh)
+            w = torch.softmax(q @ k.transpose(-1, -2), dim=-1)  # (B, H, T, T)
+            return (w @ x[:, None]).mean(1) * self.gate(x).sum(-1, keepdim=True)  # gate: (B, T, E) softmax
+
+    torch.manual_seed(0)
+    m = RoutedAttention().eval()
+    with torch.no_grad(), attnscope.capture(m) as cap:
+        m(torch.randn(2, 5, D))
+    assert [(r.name, r.shape) for r in cap.attention] == [("", (2, H, 5, 5))]  # the (B, T, E) gate is left out
