@@ -316,3 +316,29 @@ def test_encoder_decoder_families_prefill_and_cached_step(family, impl):
         _close_on_allowed(rec, ref_w)
         if rec.kind == "self":
             assert rec.shape[2:] == (1, t + 1) and rec.causal and rec.query_offset == t
+
+
+@pytest.mark.parametrize("impl", ["sdpa", "eager"])
+def test_padded_gqa_decoding_stitches_into_the_full_pass(impl):
+    """Left-padded batched decoding on a GQA model: each step is (B, H_q, 1, Tk) and the steps stitch."""
+    from attnscope.analyses.generation import stitch_steps
+
+    model, _ = _twins(*DECODERS["llama-gqa"], impl)
+    torch.manual_seed(2)
+    ids = torch.randint(3, 64, (2, 8))
+    mask = torch.ones(2, 8, dtype=torch.long)
+    mask[1, :2] = 0  # left padding, as batched generation pads
+    with torch.no_grad():
+        with attnscope.capture(model) as cap:
+            out = model(ids[:, :6], attention_mask=mask[:, :6], use_cache=True)
+            out = model(ids[:, 6:7], attention_mask=mask[:, :7], cache=out.cache, use_cache=True)
+            model(ids[:, 7:8], attention_mask=mask, cache=out.cache, use_cache=True)
+        with attnscope.capture(model) as full:
+            model(ids, attention_mask=mask)  # reference: one pass over the whole sequence
+    assert [r.shape for r in cap.attention if r.name == "model.layers.0.self_attn"] == [
+        (2, 4, 6, 6), (2, 4, 1, 7), (2, 4, 1, 8)]
+    assert all(r.causal for r in cap.attention)
+    stitched = stitch_steps(cap)
+    for rec in full.attention:
+        rows = rec.allowed_full().any(axis=-1)  # the padded row's first queries see no key
+        np.testing.assert_allclose(stitched[rec.name].weights[rows], rec.weights[rows], atol=1e-5)
