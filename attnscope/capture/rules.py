@@ -169,8 +169,11 @@ def other_sequences(module: nn.Module, args: tuple) -> tuple[torch.Tensor, ...]:
     if len(tensors) < 2:
         return ()
     first = tensors[0]
-    return tuple(o for o in tensors[1:] if o is not first and o.dim() == first.dim() and o.dim() >= 2
-                 and o.shape[-1] == first.shape[-1] and o.data_ptr() != first.data_ptr())
+    if first.is_nested or first.layout != torch.strided:
+        return ()
+    return tuple(o for o in tensors[1:] if o is not first and not o.is_nested and o.layout == torch.strided
+                 and o.dim() == first.dim() and o.dim() >= 2 and o.shape[-1] == first.shape[-1]
+                 and o.data_ptr() != first.data_ptr())
 
 
 def head_count(module: nn.Module) -> int | None:
