@@ -108,3 +108,16 @@ def test_check_causal_on_the_library_decoder_and_a_leaky_one(flash):
     leaky = lm(flash, xt.Encoder)  # the same wrapper over a bidirectional stack: every position sees the future
     report = attnscope.check_causal(lambda t: leaky(t), ids, model=leaky, vocab_size=V)
     assert not report.ok
+
+
+def test_residual_stream_where_the_warning_points_equals_the_library_hiddens():
+    model = lm(False)
+    ids = torch.randint(0, V, (2, 7))
+    with torch.no_grad():
+        _, inter = model(ids, return_intermediates=True)  # reference: the library's own per-sub-layer hiddens
+        # each sub-layer group is ModuleList([norms, block, residual]); the residual module's output is the stream
+        with attnscope.capture(model, blocks=["attn_layers.layers.*.2"]) as cap:
+            model(ids)
+    assert [r.name for r in cap.residual] == [f"attn_layers.layers.{i}.2" for i in range(4)]
+    for rec, hidden in zip(cap.residual, inter.layer_hiddens[1:]):
+        np.testing.assert_allclose(rec.norms, hidden.norm(dim=-1).numpy(), rtol=1e-5)
