@@ -199,29 +199,29 @@ def owners(named: list[tuple[str, nn.Module]], attention: set[str]) -> tuple[dic
     ``named`` is ``model.named_modules()`` (first name of each module), ``attention`` the attention modules.
     Returns ``({module name: owner name}, helpers)``; modules outside every attention module have no owner.
     """
-    modules = dict(named)
-    helpers = set()
-    for name in attention:
-        has_parent = any(_is_below(name, other) for other in attention if other != name)
-        if has_parent and not any(True for _ in modules[name].parameters()):
-            helpers.add(name)
-    blocks = [a for a in attention if a not in helpers]
-    weightless = {name for name, m in named if not any(True for _ in m.parameters())}
+    weighted: set[str] = set()  # modules that hold a parameter (their own or a child's), tied ones included
+    for pname, _ in named[0][1].named_parameters(remove_duplicate=False):
+        parts = pname.split(".")[:-1]
+        weighted.update(".".join(parts[:i]) for i in range(len(parts) + 1))
+    helpers = {a for a in attention if a not in weighted and _enclosing(a, attention) is not None}
+    blocks = attention - helpers
     owner: dict[str, str] = {}
     for name, _ in named:
-        best = None
-        for b in blocks:
-            if (b == name or _is_below(name, b)) and (best is None or len(b) > len(best)):
-                best = b
+        best = name if name in blocks else _enclosing(name, blocks)
         if best is None:
             continue
         # only weight-free helpers speak for a block: a child with weights of its own (a router, an MLP)
         # computes something else, whatever it normalises
-        child = best + "." + name[len(best) + 1 if best else 0:].split(".")[0] if best else name.split(".")[0]
-        if name == best or child in weightless:
+        child = (best + "." if best else "") + name[len(best) + 1 if best else 0:].split(".")[0]
+        if name == best or child not in weighted:
             owner[name] = best
     return owner, frozenset(helpers)
 
 
-def _is_below(name: str, parent: str) -> bool:
-    return name != parent and (parent == "" or name.startswith(parent + "."))
+def _enclosing(name: str, among: set[str]) -> str | None:
+    """The innermost strict ancestor of *name* in *among* (the root ``""`` included), or None."""
+    while name:
+        name = name.rsplit(".", 1)[0] if "." in name else ""
+        if name in among:
+            return name
+    return None
