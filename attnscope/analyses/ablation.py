@@ -13,8 +13,8 @@ open, and module hooks tell it which module is calling. It never changes a param
 * ``nn.MultiheadAttention`` (also inside ``nn.Transformer*``): ``F.multi_head_attention_forward`` is called
   with a copy of ``out_proj_weight`` whose head columns are zero; for mean-ablation the copy of
   ``out_proj_bias`` gets ``W_O[:, head] @ mean`` added, the constant the mean head would contribute.
-* a softmax inside an attention module (HF ``eager``): the next ``matmul`` of the weights with the values
-  (first operand of the weights' shape) gets the head's slice of its result replaced.
+* a softmax inside an attention module (HF ``eager``) or a weight-free helper of it: the next ``matmul`` (or
+  ``einsum`` laid out ``(B, H, Tq, ·)``) of the weights with the values gets the head's slice of its result replaced.
 
 Calls outside the named modules, and every run outside the block, are untouched (bit for bit).
 
@@ -135,6 +135,7 @@ class HeadIntervention:
                 self._handles.append(module.register_forward_hook(self._post_hook(), always_call=True))
             routes = attention_routes(self)
             routes.update({f: self._on_matmul for f in _MATMUL_FUNCS})  # HF eager: weights @ values
+            routes[torch.einsum] = self._on_einsum  # einsum("b h i j, b h j d -> b h i d", weights, values)
             self._mode = RoutingMode(routes)
             self._mode.__enter__()
         except BaseException:
@@ -291,6 +292,26 @@ class HeadIntervention:
                 and values.shape[-2] == weights.shape[-1]):
             return out
         owner.pending = None  # (B, H, Tq, Tk) @ (B, H, Tk, Dh): the weights meet the values
+        return self._edit_heads(out, self._call(frame, "softmax", out.shape[1]))
+
+
+    def _on_einsum(self, func, args, kwargs):
+        out = func(*args, **kwargs)
+        frame = self._frame()
+        owner = None if frame is None else frame.owner
+        if owner is None or owner.pending is None or not args or not isinstance(args[0], str):
+            return out
+        operands = list(args[1][0:]) if len(args) == 2 and isinstance(args[1], (list, tuple)) else list(args[1:])
+        if len(operands) != 2 or "->" not in args[0] or not isinstance(out, torch.Tensor):
+            return out
+        weights, values = operands
+        inputs, result = args[0].replace(" ", "").split("->")
+        first = inputs.split(",")[0]
+        if not (isinstance(weights, torch.Tensor) and isinstance(values, torch.Tensor) and len(first) == 4
+                and weights.shape == owner.pending.shape and values.dim() == 4 and out.dim() == 4
+                and result[:3] == first[:3] and out.shape[:3] == weights.shape[:3]):
+            return out  # only an output laid out (B, H, Tq, Dh) like the weights' first three axes is edited
+        owner.pending = None
         return self._edit_heads(out, self._call(frame, "softmax", out.shape[1]))
 
 

@@ -121,3 +121,23 @@ def test_residual_stream_where_the_warning_points_equals_the_library_hiddens():
     assert [r.name for r in cap.residual] == [f"attn_layers.layers.{i}.2" for i in range(4)]
     for rec, hidden in zip(cap.residual, inter.layer_hiddens[1:]):
         np.testing.assert_allclose(rec.norms, hidden.norm(dim=-1).numpy(), rtol=1e-5)
+
+
+def test_head_output_norms_on_both_library_paths():
+    from attnscope.analyses.heads import head_output_norms
+
+    torch.manual_seed(5)
+    ids = torch.randint(0, V, (2, 7))
+    tables = {}
+    for flash in (False, True):
+        model = lm(flash)
+        to_out = model.attn_layers.layers[0][1].to_out
+        dh = to_out.weight.shape[1] // HEADS  # the library's own head width (dim_head)
+        with torch.no_grad():
+            to_out.weight[:, dh:2 * dh] = 0.0  # head 1 of layer 0 writes nothing
+        tables[flash] = head_output_norms(model, ids)  # the block's to_out is found from the helper's call
+        assert sorted(set(tables[flash]["name"])) == ["attn_layers.layers.0.1", "attn_layers.layers.2.1"]
+        row = tables[flash][(tables[flash]["name"] == "attn_layers.layers.0.1") & (tables[flash]["head"] == 1)]
+        assert float(row["norm"].iloc[0]) == 0.0  # reference: a zero slice of W_O contributes exactly nothing
+    # the einsum path (weights meet values in einsum) and the fused path see the same head outputs
+    np.testing.assert_allclose(tables[False]["norm"], tables[True]["norm"], rtol=1e-5)
