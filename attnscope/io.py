@@ -51,6 +51,8 @@ def save(cap: Capture, path: str | os.PathLike) -> None:
         entry: dict[str, Any] = {"name": rec.name, "kind": rec.kind, "causal": bool(rec.causal),
                                  "shape": list(rec.shape), "heads": list(rec.heads), "call": rec.call,
                                  "source": rec.source, "query_offset": rec.query_offset, "arrays": {}}
+        if rec.helper is not None:
+            entry["helper"] = rec.helper  # optional: files written before it existed load without it
         parts = {"weights": rec.weights, "allowed": rec.allowed}
         if rec.stats is not None:
             parts.update({f"stats.{k}": v for k, v in rec.stats.as_arrays().items()})
@@ -150,4 +152,5 @@ def _attention(zf: zipfile.ZipFile, e: dict, where: str) -> AttentionRecord:
         raise CaptureFileError(f"{where}: record {e['name']!r} has unknown kind {e['kind']!r}")
     return AttentionRecord(name=str(e["name"]), kind=e["kind"], weights=weights, allowed=parts.get("allowed"),
                            causal=bool(e["causal"]), stats=stats, shape=shape, heads=heads, call=int(e["call"]),
-                           source=str(e["source"]), query_offset=int(e["query_offset"]))
+                           source=str(e["source"]), query_offset=int(e["query_offset"]),
+                           helper=None if e.get("helper") is None else str(e["helper"]))

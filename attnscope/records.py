@@ -116,6 +116,8 @@ class AttentionRecord:
             ``"softmax"`` (a softmax inside an attention module), ``"tap"`` (the user's :func:`attnscope.tap`).
         query_offset: absolute position of query 0 counted on the key axis (``Tk - Tq`` for a self-attention
             step with a key/value cache, else 0).
+        helper: dotted path of the module inside ``name`` that computed the weights (an ``Attend`` or
+            ``ScaledDotProductAttention`` helper, an ``nn.Softmax`` child), or ``None`` when ``name`` did itself.
     """
 
     name: str
@@ -129,6 +131,7 @@ class AttentionRecord:
     call: int = 0
     source: str = "sdpa"
     query_offset: int = 0
+    helper: str | None = None
 
     @property
     def batch(self) -> int:

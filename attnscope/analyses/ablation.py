@@ -13,8 +13,8 @@ open, and module hooks tell it which module is calling. It never changes a param
 * ``nn.MultiheadAttention`` (also inside ``nn.Transformer*``): ``F.multi_head_attention_forward`` is called
   with a copy of ``out_proj_weight`` whose head columns are zero; for mean-ablation the copy of
   ``out_proj_bias`` gets ``W_O[:, head] @ mean`` added, the constant the mean head would contribute.
-* a softmax inside an attention module (HF ``eager``): the next ``matmul`` of the weights with the values
-  (first operand of the weights' shape) gets the head's slice of its result replaced.
+* a softmax inside an attention module (HF ``eager``) or a weight-free helper of it: the next ``matmul`` (or
+  ``einsum`` laid out ``(B, H, Tq, ·)``) of the weights with the values gets the head's slice of its result replaced.
 
 Calls outside the named modules, and every run outside the block, are untouched (bit for bit).
 
@@ -44,7 +44,7 @@ import torch.nn.functional as F
 from torch import nn
 
 from attnscope.capture.discovery import map_model
-from attnscope.capture.session import (RoutingMode, attention_routes, hold_fastpath_off, release_fastpath,
+from attnscope.capture.session import (RoutingMode, attention_routes, hold_fastpath_off, muted, release_fastpath,
                                       remove_mode)
 from attnscope.errors import NoAttentionError, OptionError, UnsupportedModelError, suggest
 
@@ -88,6 +88,7 @@ class _Frame:
     name: str
     module: nn.Module
     pending: torch.Tensor | None = None  # the latest softmax output of an eager attention module
+    owner: _Frame | None = None  # the attention module this call belongs to (capture's rules.owners)
 
 
 @dataclass
@@ -134,6 +135,7 @@ class HeadIntervention:
                 self._handles.append(module.register_forward_hook(self._post_hook(), always_call=True))
             routes = attention_routes(self)
             routes.update({f: self._on_matmul for f in _MATMUL_FUNCS})  # HF eager: weights @ values
+            routes[torch.einsum] = self._on_einsum  # einsum("b h i j, b h j d -> b h i d", weights, values)
             self._mode = RoutingMode(routes)
             self._mode.__enter__()
         except BaseException:
@@ -167,7 +169,15 @@ class HeadIntervention:
 
     def _pre_hook(self, name: str):
         def hook(module: nn.Module, args: tuple):
-            self._stack().append(_Frame(name, module))
+            stack = self._stack()
+            frame = _Frame(name, module)
+            owner = self._map.owner.get(name)
+            if owner == name:
+                frame.owner = frame
+            elif owner is not None:
+                frame.owner = next((f for f in reversed(stack) if f.name == owner), None) or (
+                    stack[-1].owner if stack else None)
+            stack.append(frame)
             self.seen.ran.add(name)
         return hook
 
@@ -184,6 +194,7 @@ class HeadIntervention:
         return stack[-1] if stack else None
 
     def _call(self, frame: _Frame, source: str, heads: int, out_weight: torch.Tensor | None = None) -> AttentionCall:
+        frame = frame.owner or frame  # named as capture names it: the attention module, not its helper
         call = AttentionCall(frame.name, frame.module, source, self.seen.calls, heads, out_weight)
         self.seen.calls += 1
         self.seen.attended[frame.name] = self.seen.attended.get(frame.name, 0) + 1
@@ -262,24 +273,45 @@ class HeadIntervention:
     def _on_softmax(self, func, args, kwargs):
         out = func(*args, **kwargs)
         frame = self._frame()
-        if frame is None or frame.name not in self._map.attention:
+        if frame is None or frame.owner is None:
             return out
         dim = args[1] if len(args) > 1 else kwargs.get("dim")
         if isinstance(out, torch.Tensor) and out.dim() == 4 and dim in (-1, 3):
-            frame.pending = out
+            frame.owner.pending = out  # the product with the values may run in the helper or in its owner
         return out
 
     def _on_matmul(self, func, args, kwargs):
         out = func(*args, **kwargs)
         frame = self._frame()
-        if frame is None or frame.pending is None or len(args) < 2:
+        owner = None if frame is None else frame.owner
+        if owner is None or owner.pending is None or len(args) < 2:
             return out
         weights, values = args[0], args[1]
         if not (isinstance(weights, torch.Tensor) and isinstance(values, torch.Tensor)
-                and weights.shape == frame.pending.shape and values.dim() == 4
+                and weights.shape == owner.pending.shape and values.dim() == 4
                 and values.shape[-2] == weights.shape[-1]):
             return out
-        frame.pending = None  # (B, H, Tq, Tk) @ (B, H, Tk, Dh): the weights meet the values
+        owner.pending = None  # (B, H, Tq, Tk) @ (B, H, Tk, Dh): the weights meet the values
+        return self._edit_heads(out, self._call(frame, "softmax", out.shape[1]))
+
+
+    def _on_einsum(self, func, args, kwargs):
+        out = func(*args, **kwargs)
+        frame = self._frame()
+        owner = None if frame is None else frame.owner
+        if owner is None or owner.pending is None or not args or not isinstance(args[0], str):
+            return out
+        operands = list(args[1][0:]) if len(args) == 2 and isinstance(args[1], (list, tuple)) else list(args[1:])
+        if len(operands) != 2 or "->" not in args[0] or not isinstance(out, torch.Tensor):
+            return out
+        weights, values = operands
+        inputs, result = args[0].replace(" ", "").split("->")
+        first = inputs.split(",")[0]
+        if not (isinstance(weights, torch.Tensor) and isinstance(values, torch.Tensor) and len(first) == 4
+                and weights.shape == owner.pending.shape and values.dim() == 4 and out.dim() == 4
+                and result[:3] == first[:3] and out.shape[:3] == weights.shape[:3]):
+            return out  # only an output laid out (B, H, Tq, Dh) like the weights' first three axes is edited
+        owner.pending = None
         return self._edit_heads(out, self._call(frame, "softmax", out.shape[1]))
 
 
@@ -457,7 +489,7 @@ def observe_heads(model: nn.Module, observe: Observe, fn: Callable[[], Any]) -> 
     training = model.training
     try:
         model.eval()
-        with torch.no_grad(), HeadIntervention(model, observe=observe) as watch:
+        with muted(), torch.no_grad(), HeadIntervention(model, observe=observe) as watch:
             out = fn()
         if watch.seen.calls == 0:
             raise NoAttentionError(f"running {type(model).__name__} showed no attention call "
@@ -510,7 +542,7 @@ def ablation_change(model: nn.Module, fn: Callable[[], Any], heads: HeadSpec, *,
     training = model.training
     try:
         model.eval()
-        with torch.no_grad():
+        with muted(), torch.no_grad():  # a capture the user has open records none of these runs
             base = _measure(fn())
             with ablate(model, heads, mode=mode, means=means):
                 out = _measure(fn())
@@ -560,7 +592,8 @@ def head_importance(model: nn.Module, fn: Callable[[], Any], *, heads: HeadSpec 
                 s, n = sums.get((call.name, j), (torch.zeros(dh, dtype=torch.float64), 0))
                 sums[(call.name, j)] = (s + total[j], n + b * tq)
 
-    base = _measure(observe_heads(model, observe, fn))
+    with muted():
+        base = _measure(observe_heads(model, observe, fn))
     if want_means:
         means = {key: (s / max(n, 1)).float() for key, (s, n) in sums.items()}
     chosen = list(order) if heads is None else [(n, h) for n, hs in _parse_heads(model, heads).items()
@@ -572,7 +605,7 @@ def head_importance(model: nn.Module, fn: Callable[[], Any], *, heads: HeadSpec 
     training = model.training
     try:
         model.eval()
-        with torch.no_grad():
+        with muted(), torch.no_grad():
             for name, h in tqdm(chosen, desc="ablating heads", disable=not progress, leave=False):
                 with ablate(model, [(name, h)], mode=mode, means=means):
                     out = _measure(fn())

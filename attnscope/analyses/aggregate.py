@@ -27,6 +27,7 @@ import torch
 from torch import nn
 
 from attnscope.capture import capture, record_sums
+from attnscope.capture.session import muted
 from attnscope.errors import OptionError, ShapeError
 from attnscope.records import STAT_COLUMNS, HeadSums
 
@@ -175,7 +176,7 @@ def aggregate_heads(model: nn.Module, batches: Iterable[Any], *,
     training = model.training
     try:
         model.eval()
-        with torch.no_grad():
+        with muted(), torch.no_grad():  # a capture the user has open records none of these runs
             for batch in tqdm(batches, total=total, desc="attention statistics", disable=not progress, leave=False):
                 with capture(model, keep="stats", layers=layers, heads=heads, kinds=kinds, residual=False) as cap:
                     run(model, batch)

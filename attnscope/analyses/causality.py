@@ -64,6 +64,7 @@ from torch import nn
 
 from attnscope.analyses.probes.blame import find_blame
 from attnscope.analyses.probes.runner import Runner, default_tolerance, output_tensor
+from attnscope.capture.session import muted
 from attnscope.errors import OptionError, ProbeError, ShapeError, suggest
 
 __all__ = [
@@ -289,9 +290,13 @@ def screen_splits(T: int, splits: int | Sequence[int] | None = None) -> tuple[in
 
 @contextmanager
 def _steady(modules: Sequence[nn.Module], seed: int, device: torch.device) -> Iterator[None]:
-    """Eval mode, no autograd and a seeded generator; restores every module's mode and the generator state."""
+    """Eval mode, no autograd and a seeded generator; restores every module's mode and the generator state.
+
+    Captures the user has open record none of the probe's runs (:func:`attnscope.capture.session.muted`).
+    """
     modes = [(m, m.training) for module in modules for m in module.modules()]
     with ExitStack() as stack:
+        stack.enter_context(muted())
         stack.enter_context(torch.random.fork_rng(devices=[device] if device.type == "cuda" else []))
         torch.default_generator.manual_seed(seed)
         if device.type == "cuda":

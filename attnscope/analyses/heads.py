@@ -60,7 +60,7 @@ __all__ = [
 ]
 
 #: Names the output projection of an attention module goes by, looked for in the module, then its parent.
-OUT_PROJ_NAMES = ("o_proj", "out_proj", "c_proj", "dense", "o", "proj", "out")
+OUT_PROJ_NAMES = ("o_proj", "out_proj", "c_proj", "dense", "o", "proj", "out", "to_out")
 
 LINKAGE_METHODS = ("average", "complete", "single", "weighted")
 

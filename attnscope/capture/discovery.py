@@ -1,51 +1,18 @@
 """Find, before any forward runs, where a model keeps its attention and its transformer blocks.
 
-Attention is found three ways, and a module found any way is an *attention module*:
-
-* instances of ``nn.MultiheadAttention``;
-* modules whose class name says attention (``...Attention``, ``...Attn...``), as HF and most hand-written code name them;
-* modules whose ``forward`` source calls ``scaled_dot_product_attention``, ``softmax`` or :func:`attnscope.tap`.
-
-Blocks (whose outputs are the residual stream) are ``nn.TransformerEncoderLayer`` / ``nn.TransformerDecoderLayer``
-and the elements of any ``nn.ModuleList`` whose elements each hold an attention module below them.
+What counts as an attention module or a block is decided by :mod:`attnscope.capture.rules` (its docstring is
+the table); this module walks the model once and applies those rules.
 """
 
 from __future__ import annotations
 
-import functools
-import inspect
-import re
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 from torch import nn
 
-__all__ = ["ModelMap", "map_model"]
+from attnscope.capture.rules import CONTAINERS, NN_LAYERS, is_attention_module, owners
 
-_ATTN_CLASS = re.compile(r"attention|attn", re.IGNORECASE)
-_ATTN_SOURCE = re.compile(r"scaled_dot_product_attention|softmax\(|\btap\(")
-_NN_LAYERS = (nn.TransformerEncoderLayer, nn.TransformerDecoderLayer)
-
-
-@functools.lru_cache(maxsize=512)
-def _forward_mentions_attention(cls: type) -> bool:
-    forward = cls.__dict__.get("forward")
-    if forward is None or cls.__module__.startswith("torch.nn"):
-        return False
-    try:
-        source = inspect.getsource(forward)
-    except (OSError, TypeError):
-        return False
-    return bool(_ATTN_SOURCE.search(source))
-
-
-def is_attention_module(module: nn.Module) -> bool:
-    """Whether *module* is an attention module by the rules in this module's docstring."""
-    if isinstance(module, nn.MultiheadAttention):
-        return True
-    cls = type(module)
-    if isinstance(module, (nn.ModuleList, nn.ModuleDict, nn.Sequential)):
-        return False
-    return bool(_ATTN_CLASS.search(cls.__name__)) or _forward_mentions_attention(cls)
+__all__ = ["ModelMap", "is_attention_module", "map_model"]
 
 
 @dataclass(frozen=True)
@@ -58,6 +25,9 @@ class ModelMap:
         leaves: the attention modules that hold no other attention module (what ``layers=[0, 1]`` indexes).
         blocks: dotted names of transformer blocks.
         seq_first: names of blocks whose outputs are ``(T, B, D)`` (``batch_first=False`` torch layers).
+        owner: module name -> the attention module its calls are recorded under (modules inside attention
+            modules only; see :func:`attnscope.capture.rules.owners`).
+        helpers: parameter-free attention modules inside another one; their calls go to their owner.
     """
 
     names: dict[int, str]
@@ -65,6 +35,8 @@ class ModelMap:
     leaves: tuple[str, ...]
     blocks: tuple[str, ...]
     seq_first: frozenset[str]
+    owner: dict[str, str] = field(default_factory=dict)
+    helpers: frozenset[str] = frozenset()
 
 
 def map_model(model: nn.Module) -> ModelMap:
@@ -73,7 +45,10 @@ def map_model(model: nn.Module) -> ModelMap:
     names: dict[int, str] = {}
     for name, module in named:
         names.setdefault(id(module), name)
-    attention = [name for name, m in named if names[id(m)] == name and is_attention_module(m)]
+    first = [(name, m) for name, m in named if names[id(m)] == name]
+    found = [name for name, m in first if is_attention_module(m)]
+    owner, helpers = owners(first, set(found))
+    attention = [a for a in found if a not in helpers]
     attn_set = set(attention)
 
     def holds_attention_below(prefix: str) -> bool:
@@ -81,20 +56,21 @@ def map_model(model: nn.Module) -> ModelMap:
         return any(a.startswith(lead) and a != prefix for a in attn_set)
 
     leaves = tuple(a for a in attention if not holds_attention_below(a))
-    blocks: list[str] = []
+    candidates: set[str] = set()
     seq_first: set[str] = set()
-    for name, module in named:
-        if names[id(module)] != name:
-            continue
-        if isinstance(module, _NN_LAYERS):
-            blocks.append(name)
+    for name, module in first:
+        if isinstance(module, NN_LAYERS):
+            candidates.add(name)
             if not module.self_attn.batch_first:
                 seq_first.add(name)
-        elif isinstance(module, nn.ModuleList) and len(module) > 0:
-            children = [f"{name}.{i}" if name else str(i) for i in range(len(module))]
-            if all(holds_attention_below(c) for c in children):
-                blocks.extend(c for c in children if c not in blocks)
+        elif isinstance(module, CONTAINERS):
+            for child_name, child in module.named_children():
+                full = f"{name}.{child_name}" if name else child_name
+                if not isinstance(child, CONTAINERS) and holds_attention_below(full):
+                    candidates.add(full)
+    # a block inside another block is part of it (a sub-layer); the outermost are the residual stream
+    blocks = [c for c in candidates if not any(o != c and (o == "" or c.startswith(o + ".")) for o in candidates)]
     order = {name: i for i, (name, _) in enumerate(named)}
     blocks = sorted(set(blocks), key=order.__getitem__)
     return ModelMap(names=names, attention=tuple(attention), leaves=leaves, blocks=tuple(blocks),
-                    seq_first=frozenset(seq_first))
+                    seq_first=frozenset(seq_first), owner=owner, helpers=helpers)

@@ -100,9 +100,13 @@ def compact(allowed: torch.Tensor | None, shape: tuple[int, int, int, int]) -> t
 
 
 def is_causal_mask(allowed: torch.Tensor | None, tq: int, tk: int, offset: int) -> bool:
-    """True when *allowed* forbids every key later than the query (``j > i + offset``)."""
+    """True when *allowed* forbids every key later than the query (``j > i + offset``).
+
+    With no mask (None) that holds only when no key lies after any query: a cached decode step of one query
+    (``offset = Tk - 1``) sees only earlier keys and itself.
+    """
     if allowed is None:
-        return False
+        return tk - 1 <= offset
     future = ~causal_allowed(tq, tk, offset)  # (Tq, Tk)
     return not bool((allowed & future).any())
 

@@ -117,3 +117,228 @@ def test_t5_relative_bias_and_cross(impl):
     for rec, ref_w in zip(cross + dec_self, ref.cross_attentions + ref.decoder_attentions):
         np.testing.assert_allclose(rec.weights, ref_w.numpy(), atol=1e-5)
     assert all(r.causal for r in dec_self)
+
+
+# ---------------------------------------------------------------- the families table
+# Each family is built from a tiny config with random weights (2 layers, width 32, 4 heads, T=8) and checked
+# against transformers' own eager ``output_attentions`` on a twin with the same weights: unpadded and padded,
+# prefill and one cached decode step, with every attention implementation the family offers on CPU.
+def _cfg(name, **kw):
+    return getattr(transformers, name)(**kw)
+
+
+SMALL = dict(vocab_size=64, hidden_size=32, intermediate_size=64, num_hidden_layers=2, num_attention_heads=4,
+             max_position_embeddings=64)
+DECODERS = {
+    # name: (config factory, model class name)
+    "llama-gqa": (lambda: _cfg("LlamaConfig", num_key_value_heads=2, **SMALL), "LlamaForCausalLM"),
+    "mistral-sliding": (lambda: _cfg("MistralConfig", num_key_value_heads=2, sliding_window=4, **SMALL),
+                        "MistralForCausalLM"),
+    "gemma3-sliding": (lambda: _cfg("Gemma3TextConfig", num_key_value_heads=2, head_dim=8, sliding_window=4,
+                                    layer_types=["sliding_attention", "full_attention"],
+                                    attn_logit_softcapping=None, **SMALL), "Gemma3ForCausalLM"),
+    "qwen2": (lambda: _cfg("Qwen2Config", num_key_value_heads=2, **SMALL), "Qwen2ForCausalLM"),
+    "qwen3": (lambda: _cfg("Qwen3Config", num_key_value_heads=2, head_dim=8, **SMALL), "Qwen3ForCausalLM"),
+    "mixtral": (lambda: _cfg("MixtralConfig", num_key_value_heads=2, num_local_experts=4, num_experts_per_tok=2,
+                             **SMALL), "MixtralForCausalLM"),
+    "gpt2": (lambda: _cfg("GPT2Config", n_layer=2, n_head=4, n_embd=32, vocab_size=64, n_positions=64,
+                          bos_token_id=0, eos_token_id=0),
+             "GPT2LMHeadModel"),
+    "gpt-neox": (lambda: _cfg("GPTNeoXConfig", **SMALL), "GPTNeoXForCausalLM"),
+    "phi": (lambda: _cfg("PhiConfig", **SMALL), "PhiForCausalLM"),
+    "opt": (lambda: _cfg("OPTConfig", vocab_size=64, hidden_size=32, num_hidden_layers=2, ffn_dim=64,
+                         num_attention_heads=4, max_position_embeddings=64, word_embed_proj_dim=32), "OPTForCausalLM"),
+    "gemma": (lambda: _cfg("GemmaConfig", num_key_value_heads=2, head_dim=8, **SMALL), "GemmaForCausalLM"),
+    "gemma2-sliding": (lambda: _cfg("Gemma2Config", num_key_value_heads=2, head_dim=8, sliding_window=4,
+                                    attn_logit_softcapping=None, **SMALL), "Gemma2ForCausalLM"),
+    "bloom": (lambda: _cfg("BloomConfig", vocab_size=64, hidden_size=32, n_layer=2, n_head=4), "BloomForCausalLM"),
+    "xglm": (lambda: _cfg("XGLMConfig", vocab_size=64, d_model=32, ffn_dim=64, num_layers=2, attention_heads=4,
+                          max_position_embeddings=64), "XGLMForCausalLM"),
+    "falcon-mqa": (lambda: _cfg("FalconConfig", vocab_size=64, hidden_size=32, num_hidden_layers=2,
+                                num_attention_heads=4), "FalconForCausalLM"),
+}
+
+
+EAGER_ONLY = {"bloom", "gemma2-sliding", "xglm"}  # transformers offers no sdpa path for these
+
+
+def _cases(table):
+    return [(f, impl) for f in sorted(table) for impl in ("sdpa", "eager") if impl == "eager" or f not in EAGER_ONLY]
+
+
+def _twins(make_config, cls_name, impl):
+    cfg = make_config()
+    cls = getattr(transformers, cls_name)
+    model = build(cfg, cls, impl)
+    ref = build(cfg, cls, "eager")
+    ref.load_state_dict(model.state_dict())
+    return model, ref
+
+
+def _close_on_allowed(rec, ref_w):
+    """Compare where the query has an allowed key (rows with none are implementation-defined)."""
+    ref_w = ref_w.float().numpy()
+    assert rec.weights.shape == ref_w.shape, (rec.name, rec.weights.shape, ref_w.shape)
+    rows = rec.allowed_full().any(axis=-1)  # (B, H, Tq)
+    np.testing.assert_allclose(rec.weights[rows], ref_w[rows], atol=2e-5)  # reference: HF eager output_attentions
+
+
+def _query_heads(model):
+    cfg = model.config.get_text_config() if hasattr(model.config, "get_text_config") else model.config
+    for attr in ("num_attention_heads", "n_head", "attention_heads"):
+        if isinstance(getattr(cfg, attr, None), int):
+            return getattr(cfg, attr)
+    raise AssertionError("no head count in config")
+
+
+@pytest.mark.parametrize(("family", "impl"), _cases(DECODERS))
+def test_decoder_families_prefill_and_cached_step(family, impl):
+    model, ref = _twins(*DECODERS[family], impl)
+    heads = _query_heads(model)
+    b, t = 2, 8
+    torch.manual_seed(1)
+    ids = torch.randint(3, 64, (b, t))
+    padded = torch.ones(b, t, dtype=torch.long)
+    padded[1, 6:] = 0  # right padding on the second row
+    for mask in (None, padded):
+        with torch.no_grad():
+            ref_out = ref(ids, attention_mask=mask, output_attentions=True, use_cache=True)  # reference: HF eager
+            plain = model(ids, attention_mask=mask, use_cache=True)
+            with attnscope.capture(model) as cap:
+                out = model(ids, attention_mask=mask, use_cache=True)
+        torch.testing.assert_close(out.logits, plain.logits, atol=0, rtol=0)  # capture leaves it alone
+        assert len(cap.attention) == len(ref_out.attentions) == 2
+        for rec, ref_w in zip(cap.attention, ref_out.attentions):
+            assert rec.kind == "self" and rec.causal, (family, rec)
+            _close_on_allowed(rec, ref_w)
+        assert len(cap.residual) == 2
+        # one cached decode step: (B, H_q, 1, T+1), causal, the query after every cached key
+        nxt = torch.randint(3, 64, (b, 1))
+        step_mask = None if mask is None else torch.cat([mask, torch.ones(b, 1, dtype=torch.long)], dim=1)
+        with torch.no_grad():
+            ref_step = ref(nxt, attention_mask=step_mask, cache=ref_out.cache,
+                           output_attentions=True, use_cache=True)  # reference: HF eager
+            with attnscope.capture(model) as step:
+                model(nxt, attention_mask=step_mask, cache=out.cache, use_cache=True)
+        assert len(step.attention) == len(ref_step.attentions) == 2
+        for rec, ref_w in zip(step.attention, ref_step.attentions):
+            tk = ref_w.shape[-1]  # t + 1 keys, or the window a sliding-window cache keeps (HF's own count)
+            assert tk == t + 1 or "sliding" in family
+            assert rec.shape == (b, heads, 1, tk), (family, mask is not None, rec.shape)
+            assert rec.kind == "self" and rec.causal and rec.query_offset == tk - 1, (family, rec)
+            _close_on_allowed(rec, ref_w)
+
+
+ENCODERS = {
+    "bert": (lambda: _cfg("BertConfig", **SMALL), "BertModel"),
+    "roberta": (lambda: _cfg("RobertaConfig", pad_token_id=1, **{**SMALL, "max_position_embeddings": 70}),
+                "RobertaModel"),
+    "distilbert": (lambda: _cfg("DistilBertConfig", vocab_size=64, dim=32, n_layers=2, n_heads=4, hidden_dim=64,
+                                max_position_embeddings=64), "DistilBertModel"),
+    "modernbert": (lambda: _cfg("ModernBertConfig", local_attention=4, global_attn_every_n_layers=2, pad_token_id=0,
+                                eos_token_id=1, bos_token_id=2, cls_token_id=2, sep_token_id=1, **SMALL),
+                   "ModernBertModel"),
+}
+
+
+@pytest.mark.parametrize(("family", "impl"), _cases(ENCODERS))
+def test_encoder_families_padded_and_unpadded(family, impl):
+    model, ref = _twins(*ENCODERS[family], impl)
+    b, t = 2, 8
+    torch.manual_seed(1)
+    ids = torch.randint(3, 64, (b, t))
+    padded = torch.ones(b, t, dtype=torch.long)
+    padded[1, 5:] = 0
+    for mask in (None, padded):
+        with torch.no_grad():
+            ref_out = ref(ids, attention_mask=mask, output_attentions=True)  # reference: HF eager
+            with attnscope.capture(model) as cap:
+                model(ids, attention_mask=mask)
+        assert len(cap.attention) == len(ref_out.attentions) == 2
+        for rec, ref_w in zip(cap.attention, ref_out.attentions):
+            assert rec.kind == "self" and not rec.causal, (family, rec)
+            _close_on_allowed(rec, ref_w)
+            if mask is not None:
+                assert not rec.allowed_full()[1, :, :, 5:].any()  # padded keys forbidden
+        assert len(cap.residual) == 2
+
+
+SEQ2SEQ = {
+    "t5": (lambda: _cfg("T5Config", vocab_size=64, d_model=32, d_kv=8, d_ff=64, num_layers=2, num_decoder_layers=2,
+                        num_heads=4), "T5Model"),
+    "bart": (lambda: _cfg("BartConfig", vocab_size=64, d_model=32, encoder_layers=2, decoder_layers=2,
+                          encoder_attention_heads=4, decoder_attention_heads=4, encoder_ffn_dim=64,
+                          decoder_ffn_dim=64, max_position_embeddings=64), "BartModel"),
+    "whisper": (lambda: _cfg("WhisperConfig", vocab_size=64, num_mel_bins=8, encoder_layers=2, decoder_layers=2,
+                             encoder_attention_heads=4, decoder_attention_heads=4, d_model=32, encoder_ffn_dim=64,
+                             decoder_ffn_dim=64, max_source_positions=8, max_target_positions=16, pad_token_id=0,
+                             bos_token_id=1, eos_token_id=2, decoder_start_token_id=1), "WhisperModel"),
+}
+
+
+@pytest.mark.parametrize(("family", "impl"), _cases(SEQ2SEQ))
+def test_encoder_decoder_families_prefill_and_cached_step(family, impl):
+    model, ref = _twins(*SEQ2SEQ[family], impl)
+    b, s, t = 2, 8, 5
+    torch.manual_seed(1)
+    if family == "whisper":
+        src = {"input_features": torch.randn(b, 8, 16)}  # (B, mel bins, 2 * source positions)
+    else:
+        src_mask = torch.ones(b, s, dtype=torch.long)
+        src_mask[1, 6:] = 0
+        src = {"input_ids": torch.randint(3, 64, (b, s)), "attention_mask": src_mask}
+    tgt = torch.randint(3, 64, (b, t))
+    with torch.no_grad():
+        ref_out = ref(**src, decoder_input_ids=tgt, output_attentions=True, use_cache=True)  # reference: HF eager
+        with attnscope.capture(model) as cap:
+            out = model(**src, decoder_input_ids=tgt, use_cache=True)
+    expected = list(ref_out.encoder_attentions)
+    for self_w, cross_w in zip(ref_out.decoder_attentions, ref_out.cross_attentions):
+        expected += [self_w, cross_w]
+    kinds = ["self"] * len(ref_out.encoder_attentions) + ["self", "cross"] * len(ref_out.decoder_attentions)
+    assert [r.kind for r in cap.attention] == kinds
+    for i, (rec, ref_w) in enumerate(zip(cap.attention, expected)):
+        _close_on_allowed(rec, ref_w)
+        assert rec.causal == (i >= len(ref_out.encoder_attentions) and rec.kind == "self"), (family, rec)
+    nxt = torch.randint(3, 64, (b, 1))
+    enc = (ref_out.encoder_last_hidden_state,)
+    with torch.no_grad():
+        ref_step = ref(encoder_outputs=enc, attention_mask=src.get("attention_mask"), decoder_input_ids=nxt,
+                       cache=ref_out.cache, output_attentions=True, use_cache=True)
+        with attnscope.capture(model) as step:
+            model(encoder_outputs=(out.encoder_last_hidden_state,), attention_mask=src.get("attention_mask"),
+                  decoder_input_ids=nxt, cache=out.cache, use_cache=True)
+    expected = []
+    for self_w, cross_w in zip(ref_step.decoder_attentions, ref_step.cross_attentions):
+        expected += [self_w, cross_w]
+    assert [r.kind for r in step.attention] == ["self", "cross"] * len(ref_step.decoder_attentions)
+    for rec, ref_w in zip(step.attention, expected):
+        _close_on_allowed(rec, ref_w)
+        if rec.kind == "self":
+            assert rec.shape[2:] == (1, t + 1) and rec.causal and rec.query_offset == t
+
+
+@pytest.mark.parametrize("impl", ["sdpa", "eager"])
+def test_padded_gqa_decoding_stitches_into_the_full_pass(impl):
+    """Left-padded batched decoding on a GQA model: each step is (B, H_q, 1, Tk) and the steps stitch."""
+    from attnscope.analyses.generation import stitch_steps
+
+    model, _ = _twins(*DECODERS["llama-gqa"], impl)
+    torch.manual_seed(2)
+    ids = torch.randint(3, 64, (2, 8))
+    mask = torch.ones(2, 8, dtype=torch.long)
+    mask[1, :2] = 0  # left padding, as batched generation pads
+    with torch.no_grad():
+        with attnscope.capture(model) as cap:
+            out = model(ids[:, :6], attention_mask=mask[:, :6], use_cache=True)
+            out = model(ids[:, 6:7], attention_mask=mask[:, :7], cache=out.cache, use_cache=True)
+            model(ids[:, 7:8], attention_mask=mask, cache=out.cache, use_cache=True)
+        with attnscope.capture(model) as full:
+            model(ids, attention_mask=mask)  # reference: one pass over the whole sequence
+    assert [r.shape for r in cap.attention if r.name == "model.layers.0.self_attn"] == [
+        (2, 4, 6, 6), (2, 4, 1, 7), (2, 4, 1, 8)]
+    assert all(r.causal for r in cap.attention)
+    stitched = stitch_steps(cap)
+    for rec in full.attention:
+        rows = rec.allowed_full().any(axis=-1)  # the padded row's first queries see no key
+        np.testing.assert_allclose(stitched[rec.name].weights[rows], rec.weights[rows], atol=1e-5)

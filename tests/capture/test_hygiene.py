@@ -89,9 +89,13 @@ def test_block_that_raises_restores_everything():
 
 
 def test_forward_that_raises_inside_attention_keeps_stack_balanced():
-    class Boom(nn.Module):
+    class Boom(nn.Module):  # holds a weight, so it is an attention module of its own (not a helper of Wrap)
+        def __init__(self):
+            super().__init__()
+            self.gain = nn.Parameter(torch.ones(()))
+
         def forward(self, x):
-            F.scaled_dot_product_attention(x, x, x)
+            F.scaled_dot_product_attention(x * self.gain, x, x)
             raise RuntimeError("half-finished model")
 
     class Wrap(nn.Module):

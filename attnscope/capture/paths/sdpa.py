@@ -1,0 +1,74 @@
+"""``F.scaled_dot_product_attention``: left to run unchanged; its weights are recomputed beside it.
+
+The fused kernels never form the weights, so :func:`attnscope.capture.masks.sdpa_weights` recomputes
+softmax(Q Kᵀ · scale + mask) from the same query, key, mask and scale (GQA aware), only for the kept heads.
+
+Grouped-query decode steps packed as ``(B, H_kv, n_rep, E)`` queries (one query per head folded onto the
+key/value heads, as HF transformers does for a single token with a mask) are unpacked to
+``(B, H_q, 1, E)`` when the owning module declares ``num_key_value_groups`` and its head count.
+"""
+
+from __future__ import annotations
+
+import torch.nn.functional as F
+
+from attnscope.capture import masks, rules
+from attnscope.capture.recorder import Recorder, as_4d
+
+SOURCE = "sdpa"
+FUNCS = (F.scaled_dot_product_attention,)
+_PARAMS = ("query", "key", "value", "attn_mask", "dropout_p", "is_causal", "scale", "enable_gqa")
+
+
+def on_call(rec: Recorder, func, args, kwargs):
+    out = func(*args, **kwargs)
+    frame = rec.frame()
+    if frame is None or not frame.selected:
+        return out
+    p = dict(zip(_PARAMS, args))
+    p.update(kwargs)
+    q, k = p["query"], p["key"]
+    attn_mask, is_causal = p.get("attn_mask"), bool(p.get("is_causal", False))
+    q4, k4, mask4 = as_4d(q), as_4d(k), attn_mask
+    if mask4 is not None and q.dim() > 4:
+        mask4 = mask4.reshape(-1, *mask4.shape[-3:]) if mask4.dim() > 4 else mask4
+    rep = q4.shape[1] // k4.shape[1] if p.get("enable_gqa", False) else 1
+    groups = _packed_groups(frame.target().module, q4, k4)
+    if groups:
+        q4, rep = _unpack(q4, groups), groups  # (B, H_kv, n_rep, E) -> (B, H_q, 1, E)
+        if mask4 is not None and mask4.dim() == 4 and mask4.shape[1] == q.shape[-3] and mask4.shape[-2] == groups:
+            mask4 = _unpack(mask4, groups)  # a per-head mask was packed the same way
+    b, hq, tq, _ = q4.shape  # (B, Hq, Tq, E)
+    tk = k4.shape[-2]
+    kind = frame.kind()
+    offset = 0 if (is_causal or kind == "cross") else max(tk - tq, 0)
+    allowed = masks.compact(masks.sdpa_allowed(mask4, is_causal, tq, tk), (b, hq, tq, tk))
+    heads = rec.kept_heads(hq, frame.target().name)
+
+    def compute(sl: slice, hs: list[int]):
+        m = mask4
+        if m is not None and m.dim() == 4:
+            m = m[sl] if m.shape[0] == b else m
+            m = m[:, hs] if m.shape[1] == hq else m
+        kh = [h // rep for h in hs] if k4.shape[1] > 1 else [0]
+        return masks.sdpa_weights(q4[sl][:, hs], k4[sl][:, kh], m, is_causal, p.get("scale"))
+
+    causal = is_causal or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset))
+    rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute)
+    return out
+
+
+def _packed_groups(module, q4, k4) -> int:
+    """``n_rep`` when *q4* is a packed grouped-query decode step of *module*, else 0."""
+    groups = getattr(module, "num_key_value_groups", None)
+    if not isinstance(groups, int) or groups <= 1:
+        return 0
+    heads = rules.head_count(module)
+    if heads is None or q4.shape[1] * groups != heads or k4.shape[1] != q4.shape[1] or q4.shape[2] != groups:
+        return 0
+    return groups
+
+
+def _unpack(t, groups: int):
+    b, hkv, _, e = t.shape
+    return t.reshape(b, hkv * groups, 1, e)

@@ -1,0 +1,299 @@
+"""What the attention paths write to: who is calling (a per-thread module call stack) and making records.
+
+A :class:`Recorder` is the part of a capture that the attention paths (:mod:`attnscope.capture.paths`) see.
+Module hooks push and pop :class:`Frame` objects; a path asks :meth:`Recorder.frame` which module is calling,
+:meth:`Recorder.kept_heads` which heads to keep, and hands the call to :meth:`Recorder.record`, which enforces
+the memory budget and keeps either the maps or their per-head statistics.
+"""
+
+from __future__ import annotations
+
+import threading
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import torch
+from torch import nn
+
+from attnscope.capture import rules
+from attnscope.capture.discovery import ModelMap
+from attnscope.errors import MemoryBudgetError, OptionError
+from attnscope.records import AttentionRecord, HeadSums, ResidualRecord
+from attnscope.stats import head_sums
+
+__all__ = ["Frame", "Recorder", "as_4d", "take"]
+
+_STATS_CHUNK_BYTES = 4 * 1024**2  # keep="stats" never builds more than this much of a map at once
+
+#: ``compute(batch_slice, heads) -> (b, len(heads), Tq, Tk)`` float32 weights that no one else holds.
+Compute = Callable[[slice, list], torch.Tensor]
+
+
+@dataclass
+class Frame:
+    """One module call on a capture's call stack.
+
+    ``owner`` is the frame of the attention module this call's attention is recorded under (itself, the
+    enclosing attention module for a helper or any child of it, or None outside every attention module).
+    """
+
+    name: str
+    module: nn.Module
+    kind_hint: str | None
+    selected: bool
+    last_softmax: Any = None  # (output tensor, record index) of the latest softmax seen in this frame
+    owner: Frame | None = None
+    others: tuple = ()  # floating tensor arguments that may carry another sequence (rules.other_sequences)
+    consumed_other: bool = False  # a child module consumed one of ``others``: keys come from another sequence
+
+    def target(self) -> Frame:
+        """The frame a record of an attention call in this frame is named after."""
+        return self.owner or self
+
+    def kind(self) -> str:
+        """``"self"``/``"cross"`` of an attention call in this frame, by the rules of :mod:`attnscope.capture.rules`."""
+        t = self.target()
+        return t.kind_hint or ("cross" if t.consumed_other else "self")
+
+    def known_kind(self) -> str | None:
+        """The kind when a rule decided it, else None (the path may decide, as MHA does from its arguments)."""
+        t = self.target()
+        return t.kind_hint or ("cross" if t.consumed_other else None)
+
+
+@dataclass
+class _Counters:
+    calls: int = 0
+    blocks: int = 0
+    kept_bytes: int = 0
+    foreign: int = 0
+    ran: set[str] = field(default_factory=set)
+    recorded_in: set[str] = field(default_factory=set)
+
+
+class Recorder:
+    """Call stack and record keeping of one capture (the lifecycle lives in :class:`~attnscope.capture.session.Capture`)."""
+
+    def __init__(self, model_map: ModelMap, *, keep: str, max_bytes: int, selected: set[str] | None,
+                 heads: tuple[int, ...] | None, kinds: list[tuple[str, str]]) -> None:
+        self.map = model_map
+        self.keep = keep
+        self.max_bytes = max_bytes
+        self.selected = selected
+        self.heads = heads
+        self.kinds = kinds
+        self.attention: list[AttentionRecord] = []
+        self.residual: list[ResidualRecord] = []
+        self.counters = _Counters()
+        self.thread: int | None = None
+        self.open = False
+        self.muted = 0  # > 0 while an attnscope computation runs the model inside this capture (session.muted)
+        self._tls = threading.local()
+
+    # ---------------------------------------------------------------- hooks: who is calling
+    def _stack(self) -> list[Frame]:
+        stack = getattr(self._tls, "stack", None)
+        if stack is None:
+            stack = self._tls.stack = []
+        return stack
+
+    def pre_hook(self, name: str):
+        """A forward pre-hook (``with_kwargs=True``) that pushes the call of module *name*."""
+        def hook(module: nn.Module, args: tuple, kwargs: dict):
+            if threading.get_ident() != self.thread:
+                self.counters.foreign += 1  # the torch function mode is per thread: this call cannot be seen
+                return None
+            stack = self._stack()
+            parent = stack[-1] if stack else None
+            # a module is selected when named, or when it runs inside a selected one
+            selected = self.selected is None or name in self.selected or bool(parent and parent.selected)
+            frame = Frame(name, module, rules.kind_hint(name, module, args, kwargs, self.kinds), selected,
+                          others=rules.other_sequences(module, args))
+            owner_name = self.map.owner.get(name)
+            if owner_name == name:
+                frame.owner = frame
+            elif owner_name is not None:
+                frame.owner = next((f for f in reversed(stack) if f.name == owner_name), None) or (
+                    parent.owner if parent else None)
+            if parent is not None:
+                _note_consumed(parent, args)
+            stack.append(frame)
+            if selected and name in self.map.attention and not self.muted:
+                self.counters.ran.add(name)
+            return None
+        return hook
+
+    def post_hook(self, name: str, is_block: bool):
+        """A forward hook (``always_call=True``) that pops the call and records a block's residual stream."""
+        def hook(module: nn.Module, args: tuple, output: Any):
+            if threading.get_ident() != self.thread:
+                return None
+            stack = self._stack()
+            while stack:  # always_call=True: also runs when forward raised, so the stack stays balanced
+                frame = stack.pop()
+                if frame.module is module:
+                    break
+            if is_block and self.open and not self.muted:
+                self.record_residual(name, output)
+            return None
+        return hook
+
+    def frame(self) -> Frame | None:
+        """The innermost module call on this thread, or None outside the model (and while muted)."""
+        if self.muted:
+            return None
+        stack = getattr(self._tls, "stack", None)
+        return stack[-1] if stack else None
+
+    # ---------------------------------------------------------------- making records
+    def kept_heads(self, h: int, name: str) -> tuple[int, ...]:
+        """The head indices to keep of a call with *h* heads in module *name*."""
+        if self.heads is None:
+            return tuple(range(h))
+        if max(self.heads) >= h:
+            raise OptionError(f"heads= asks for head {max(self.heads)}, but '{name}' has {h} heads")
+        return self.heads
+
+    def record(self, frame: Frame, kind: str, shape: tuple[int, int, int, int], heads: tuple[int, ...],
+               allowed: torch.Tensor | None, causal: bool, source: str, offset: int, compute: Compute,
+               replace_at: int | None = None) -> int:
+        """Keep one call (maps or statistics) and return its index in :attr:`attention`.
+
+        ``allowed`` is the compact ``(B or 1, H or 1, Tq, Tk)`` bool mask or None; ``replace_at`` refines an
+        earlier record of the same call (a ``tap`` of a softmax's output).
+        """
+        b, _, tq, tk = shape
+        target = frame.target()
+        helper = frame.name if target is not frame else None
+        if allowed is not None and allowed.shape[1] > 1:
+            allowed = allowed[:, list(heads)]
+        per_item = len(heads) * tq * tk * 4  # float32 bytes of one batch item's kept map
+        if self.keep == "maps":
+            size = b * per_item
+            if replace_at is None and self.counters.kept_bytes + size > self.max_bytes:
+                raise MemoryBudgetError(
+                    f"keeping the maps of '{target.name}' ({b}x{len(heads)}x{tq}x{tk} float32 = {_mb(size)}) would "
+                    f"bring the capture to {_mb(self.counters.kept_bytes + size)}, over its budget of "
+                    f"{_mb(self.max_bytes)}. Use keep='stats' (per-head statistics only), select fewer "
+                    "layers=/heads=, a smaller batch, or raise max_bytes=.")
+            weights = compute(slice(None), list(heads))
+            stats = None
+            kept = weights.numpy()
+            if replace_at is None:
+                self.counters.kept_bytes += size
+        else:
+            stats = _reduce(compute, b, heads, allowed, offset, tq * tk * 4)
+            kept = None
+        # keep="stats" keeps O(heads) numbers per call, so no (Tq, Tk) mask either: the statistics already hold
+        # what the mask meant (leak_mass, rows), and ``causal`` says whether it was causal.
+        allowed_np = None if allowed is None or self.keep == "stats" else allowed.numpy().copy()
+        index = self.counters.calls if replace_at is None else self.attention[replace_at].call
+        record = AttentionRecord(name=target.name, kind=kind, weights=kept, allowed=allowed_np, causal=causal,
+                                 stats=stats, shape=shape, heads=heads, call=index, source=source,
+                                 query_offset=offset, helper=helper)
+        if replace_at is None:
+            self.attention.append(record)
+            self.counters.calls += 1
+            self.counters.recorded_in.add(target.name)
+            return len(self.attention) - 1
+        self.attention[replace_at] = record
+        return replace_at
+
+    def record_residual(self, name: str, output: Any) -> None:
+        """Keep the per-position norms of block *name*'s output."""
+        out = _first_tensor(output)
+        if out is None or out.dim() < 2 or not out.is_floating_point():
+            return
+        x = out.detach()
+        if x.is_nested:
+            return
+        if name in self.map.seq_first and x.dim() == 3:
+            x = x.transpose(0, 1)  # (T, B, D) -> (B, T, D)
+        if x.dim() == 2:
+            x = x.unsqueeze(0)
+        norms = torch.linalg.vector_norm(x.float(), dim=-1).numpy().copy()  # (B, T)
+        self.residual.append(ResidualRecord(name=name, norms=norms, call=self.counters.blocks))
+        self.counters.blocks += 1
+
+
+def _note_consumed(parent: Frame, args: tuple) -> None:
+    """Mark the calling frames whose candidate other sequence a child module takes as its input."""
+    first = next((a for a in args if isinstance(a, torch.Tensor)), None)
+    if first is None:
+        return
+    for frame in (parent, parent.owner):
+        if frame is not None and frame.others and not frame.consumed_other:
+            try:
+                hit = any(first is o or (first.data_ptr() == o.data_ptr() and first.shape == o.shape)
+                          for o in frame.others)
+            except RuntimeError:  # tensors without plain storage (nested, sparse) are compared by identity only
+                hit = any(first is o for o in frame.others)
+            frame.consumed_other = hit
+
+
+def _reduce(compute: Compute, b: int, heads: tuple[int, ...], allowed: torch.Tensor | None, offset: int,
+            map_bytes: int) -> HeadSums:
+    """keep="stats": reduce a call to per-head sums, building at most ``_STATS_CHUNK_BYTES`` of map at once."""
+    per_item = len(heads) * map_bytes
+    b_step = max(1, _STATS_CHUNK_BYTES // max(per_item, 1))
+    h_step = len(heads) if b_step > 1 else max(1, min(len(heads), _STATS_CHUNK_BYTES // max(map_bytes, 1)))
+    groups = []
+    for h0 in range(0, len(heads), h_step):
+        positions = list(range(h0, min(len(heads), h0 + h_step)))
+        hs = [heads[i] for i in positions]
+        sums = HeadSums.zeros(len(hs))
+        for start in range(0, b, b_step):
+            sl = slice(start, min(b, start + b_step))
+            a = allowed
+            if a is not None:
+                a = a if a.shape[0] == 1 else a[sl]
+                a = a[:, positions] if a.shape[1] > 1 else a
+            sums = sums.merge(head_sums(compute(sl, hs), a, offset))
+        groups.append(sums)
+    return groups[0] if len(groups) == 1 else HeadSums.concat(groups)
+
+
+def take(w: torch.Tensor, sl: slice, hs: list[int], shared: bool) -> torch.Tensor:
+    """Batch slice *sl*, heads *hs* of ``(B, H, Tq, Tk)`` weights as float32 memory that no one else holds.
+
+    Picking heads by a list copies; all heads of a tensor no one else holds are taken as they are (no copy).
+    """
+    if not shared and hs == list(range(w.shape[1])):
+        part = w[sl]
+    else:
+        part = w[sl][:, hs]  # advanced indexing: a copy
+    return part.float().contiguous()
+
+
+def as_4d(t: torch.Tensor) -> torch.Tensor:
+    """*t* as ``(B, H, T, E)``: extra leading axes folded into B, missing ones added as size 1."""
+    if t.dim() == 4:
+        return t
+    if t.dim() > 4:
+        return t.reshape(-1, *t.shape[-3:])
+    while t.dim() < 4:
+        t = t.unsqueeze(0)
+    return t
+
+
+def _first_tensor(output: Any) -> torch.Tensor | None:
+    """The hidden state in a block's output: the tensor itself, or the first one in nested tuples, lists, dicts."""
+    if isinstance(output, torch.Tensor):
+        return output
+    if isinstance(output, Mapping):
+        preferred = [output[k] for k in ("last_hidden_state", "hidden_states") if k in output]
+        items = preferred + list(output.values())
+    elif isinstance(output, (tuple, list)):
+        items = list(output)
+    else:
+        return None
+    for item in items:
+        found = _first_tensor(item)
+        if found is not None:
+            return found
+    return None
+
+
+def _mb(n: int) -> str:
+    return f"{n / 1024**2:.1f} MiB" if n >= 1024**2 else f"{n / 1024:.1f} KiB" if n >= 1024 else f"{n} bytes"
