@@ -61,8 +61,8 @@ _LAZY = {
     "stitch_steps": "attnscope.analyses.generation",
     "compare_captures": "attnscope.analyses.compare",
     # watching training
-    "Tracker": "attnscope.track",
-    "track": "attnscope.track",
+    "Tracker": "attnscope.tracking",
+    "track": "attnscope.tracking",
     # views (need the notebook extra: ipywidgets, bokeh, jupyter_bokeh)
     "dashboard": "attnscope.views",
     "export_html": "attnscope.views",

@@ -43,11 +43,11 @@ _SUMS = [f.name for f in fields(HeadSums)]
 def save(cap: Capture, path: str | os.PathLike) -> None:
     """Write *cap* (a finished capture) to *path* as a zip of JSON and ``.npy`` arrays.
 
-    A :class:`~attnscope.track.Tracker` (from :func:`attnscope.track`) is written as a run file instead
-    (JSON lines, see :mod:`attnscope.track.store`); :func:`load` reads both.
+    A :class:`~attnscope.tracking.Tracker` (from :func:`attnscope.track`) is written as a run file instead
+    (JSON lines, see :mod:`attnscope.tracking.store`); :func:`load` reads both.
     """
     if type(cap).__name__ == "Tracker":
-        from attnscope.track.store import write_run
+        from attnscope.tracking.store import write_run
 
         write_run(path, cap._header(), cap.steps)
         return
@@ -89,14 +89,14 @@ def load(path: str | os.PathLike) -> Capture:
     """Read a capture written by :func:`save`; anything else raises :class:`~attnscope.errors.CaptureFileError`.
 
     A run file (written by :func:`save` of a tracker, or by ``attnscope.track(..., path=...)`` as it went)
-    comes back as a :class:`~attnscope.track.Tracker` that can be read and shown, not recorded into.
+    comes back as a :class:`~attnscope.tracking.Tracker` that can be read and shown, not recorded into.
     """
     where = os.fspath(path)
-    from attnscope.track.store import is_run_file
+    from attnscope.tracking.store import is_run_file
 
     if is_run_file(where):
-        from attnscope.track.session import Tracker
-        from attnscope.track.store import read_run
+        from attnscope.tracking.session import Tracker
+        from attnscope.tracking.store import read_run
 
         header, steps = read_run(where)
         try:

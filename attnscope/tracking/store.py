@@ -6,7 +6,7 @@ crash in the middle of a write is the only thing that can be lost; :func:`read_r
 Nothing in the file is executed (plain JSON; NaN and infinity as JSON's common ``NaN``/``Infinity`` extension).
 
 >>> import os, tempfile
->>> from attnscope.track.session import StepStats
+>>> from attnscope.tracking.session import StepStats
 >>> path = os.path.join(tempfile.mkdtemp(), "run.jsonl")
 >>> w = RunWriter(path, {"every": 1, "rules": {}, "model": None})
 >>> w.append(StepStats(0, [{"name": "a", "head": 0, "entropy": 0.5}], []))
@@ -44,10 +44,11 @@ class RunWriter:
 
     def __init__(self, path: str | os.PathLike, header: dict[str, Any], *, overwrite: bool = False) -> None:
         self.path = os.fspath(path)
+        self._fd: int | None = None
         if os.path.exists(self.path) and not overwrite:
             raise OptionError(f"{self.path} exists; pick another path= or pass overwrite=True to replace it")
         flags = os.O_WRONLY | os.O_CREAT | os.O_TRUNC | os.O_APPEND
-        self._fd: int | None = os.open(self.path, flags, 0o644)
+        self._fd = os.open(self.path, flags, 0o644)
         self._write(_line({"format": FORMAT, "version": VERSION, **header}))
 
     def _write(self, data: bytes) -> None:
@@ -90,8 +91,8 @@ def is_run_file(path: str | os.PathLike) -> bool:
 
 
 def read_run(path: str | os.PathLike) -> tuple[dict[str, Any], list[Any]]:
-    """Header and :class:`~attnscope.track.StepStats` of a run file; a torn last line is dropped with a warning."""
-    from attnscope.track.session import BLOCK_COLUMNS, HEAD_COLUMNS, StepStats
+    """Header and :class:`~attnscope.tracking.StepStats` of a run file; a torn last line is dropped with a warning."""
+    from attnscope.tracking.session import BLOCK_COLUMNS, HEAD_COLUMNS, StepStats
 
     where = os.fspath(path)
     with open(where, "rb") as f:

@@ -51,7 +51,7 @@ from attnscope.capture import capture
 from attnscope.errors import CaptureStateError, OptionError, UnsupportedModelError, suggest
 from attnscope.names import name_matches
 from attnscope.records import STAT_COLUMNS, HeadSums
-from attnscope.track.alerts import Alert, AlertRules, find_alerts
+from attnscope.tracking.alerts import Alert, AlertRules, find_alerts
 
 __all__ = ["HEAD_COLUMNS", "BLOCK_COLUMNS", "StepStats", "Tracker", "track"]
 
@@ -278,7 +278,9 @@ class _RecordedStep:
                 return
             with torch.no_grad():
                 a = x.detach().abs().float().reshape(-1, x.shape[-1])  # (positions, D)
-                med = a.median(dim=-1).values  # (positions,)
+                ranked = a.sort(dim=-1).values  # (positions, D)
+                d = ranked.shape[-1]
+                med = (ranked[:, (d - 1) // 2] + ranked[:, d // 2]) / 2  # (positions,): the median, as numpy's
                 ratio = float((a.amax(dim=-1) / med.clamp_min(torch.finfo(torch.float32).tiny)).max())
             self._ratio[name] = max(ratio, self._ratio.get(name, -1.0))
         return hook
@@ -367,7 +369,7 @@ class Tracker:
                                   f"{suggest(target, names)}")
             self._out_proj.append((pattern, target))
         if path is not None:
-            from attnscope.track.store import RunWriter
+            from attnscope.tracking.store import RunWriter
 
             if self._is_writer():
                 self._writer = RunWriter(path, self._header(), overwrite=overwrite)
@@ -548,7 +550,7 @@ def track(model: nn.Module, *, every: int = 10, path: str | os.PathLike | None =
         out_proj: ``{"attention module pattern": "dotted name of its output projection"}`` where the usual names
             (see :func:`~attnscope.analyses.heads.head_output_norms`) do not find it.
         norms: measure each head's output norm (for dying heads); costs one observer on recorded steps.
-        rules: thresholds of :meth:`Tracker.alerts`, an :class:`~attnscope.track.AlertRules` or a dict of its fields.
+        rules: thresholds of :meth:`Tracker.alerts`, an :class:`~attnscope.tracking.AlertRules` or a dict of its fields.
         distributed: merge the statistics of every ``torch.distributed`` rank at each recorded step (default: when
             a process group is initialised); rank 0 writes *path*.
         overwrite: replace an existing file at *path* (default: refuse).

@@ -1,6 +1,6 @@
 """Alerts over a tracked run: each head and block judged against its own recent past.
 
-Pure functions on the tables of a :class:`~attnscope.track.Tracker`; nothing here touches a model.
+Pure functions on the tables of a :class:`~attnscope.tracking.Tracker`; nothing here touches a model.
 
 >>> import pandas as pd
 >>> heads = pd.DataFrame({"step": [0, 10, 20, 30], "name": "a", "head": 0,

@@ -9,8 +9,8 @@
 True
 """
 
-from attnscope.track.alerts import ALERT_KINDS, Alert, AlertRules, find_alerts
-from attnscope.track.session import BLOCK_COLUMNS, HEAD_COLUMNS, StepStats, Tracker, track
+from attnscope.tracking.alerts import ALERT_KINDS, Alert, AlertRules, find_alerts
+from attnscope.tracking.session import BLOCK_COLUMNS, HEAD_COLUMNS, StepStats, Tracker, track
 
 __all__ = ["ALERT_KINDS", "BLOCK_COLUMNS", "HEAD_COLUMNS", "Alert", "AlertRules", "StepStats", "Tracker",
            "find_alerts", "track"]
