@@ -201,7 +201,9 @@ class RunScene:
                                          kind=[a.kind for a in mine], reason=[a.reason for a in mine],
                                          colour=[_ALERT_COLOURS[a.kind] for a in mine])
         self.curve_fig.title.text = f"{self.labels[self.g]}: {self.statistic}"
-        if self.strip_src.selected.indices[-1:] != [self._first_cell(self.g)]:
+        picked = self.strip_src.selected.indices[-1:]
+        rows = self.strip_src.data["row"]
+        if not (picked and picked[0] < len(rows) and rows[picked[0]] == self.g):  # keep a tapped cell of this head
             cell = self._first_cell(self.g)
             self.strip_src.selected.indices = [] if cell is None else [cell]
 
