@@ -19,7 +19,7 @@ comes with the ``examples``/``test`` extras.
 >>> written = []
 >>> class Writer:                                      # anything with add_scalar(tag, value, step)
 ...     def add_scalar(self, tag, value, step): written.append((tag, value, step))
->>> stop = to_tensorboard(tr, Writer(), statistics=("entropy_ratio",), residual=())
+>>> stop = to_tensorboard(tr, Writer(), statistics=("entropy_ratio",), residual=(), alerts=False)
 >>> with tr.step(0):
 ...     _ = layer(torch.randn(1, 3, 16))
 >>> sorted(tag for tag, _, _ in written)
