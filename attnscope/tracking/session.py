@@ -1,18 +1,19 @@
 """Watch per-head statistics while a model trains: :func:`track` and the :class:`Tracker` it returns.
 
-A recorded step opens, for the length of the user's ``with tr.step(step):`` block, the project's own pieces:
-:func:`attnscope.capture` with ``keep="stats"`` (per-head attention statistics, residual-stream norms), a
-:class:`~attnscope.analyses.ablation.HeadIntervention` that only observes (each head's output ``α·v``, for its
-norm through the output projection, as :func:`~attnscope.analyses.heads.head_output_norms` measures it), and
-forward hooks on the blocks for the massive-activation ratio. A thin torch function mode on top of them keeps
-the training computation exactly as it is without tracking:
+A recorded step opens, for the length of the user's ``with tr.step(step):`` block, :func:`attnscope.capture`
+with ``keep="stats"`` (per-head attention statistics, residual-stream norms), forward hooks on the blocks (the
+massive-activation ratio) and on the attention modules (which module is calling), and a thin torch function
+mode on top of capture's that keeps the training computation exactly as it is without tracking:
 
-* the model's own ``scaled_dot_product_attention`` and ``multi_head_attention_forward`` calls run with the
-  tracker's modes lifted off the stack, so they take the very code path (and draw the very random numbers for
+* the model's own ``scaled_dot_product_attention`` and ``multi_head_attention_forward`` calls run with
+  capture's mode lifted off the stack, so they take the very code path (and draw the very random numbers for
   attention dropout) they take untracked;
-* each is followed by a *twin* call on detached inputs, under ``torch.no_grad()`` and with ``dropout_p=0``
-  (no random numbers drawn), which capture and the head observer see. Statistics therefore describe the
-  dropout-free attention of the training forward and never enter autograd.
+* each is followed by a *twin* call on the same inputs, under ``torch.no_grad()`` and with ``dropout_p=0`` (no
+  random numbers drawn), which capture sees. Statistics therefore describe the dropout-free attention of the
+  training forward and never enter autograd. The twin also returns each head's output ``α·v``, whose norm
+  through the head's slice of the output projection (found as
+  :func:`~attnscope.analyses.heads.head_output_norms` finds it) is the head's output norm. Capture keeps no
+  head outputs, so this one measurement is made here, from the twin.
 
 A softmax computed by hand inside an attention module is observed where it is (capture keeps no map and
 detaches). Everything is undone when the block ends, also when it raises; other steps run no code of ours
@@ -62,6 +63,8 @@ BLOCK_COLUMNS = ("positions", "residual_norm", "residual_max", "massive_ratio")
 
 _SDPA_PARAMS = ("query", "key", "value", "attn_mask", "dropout_p", "is_causal", "scale", "enable_gqa")
 _MHA_SIGNATURE = inspect.signature(F.multi_head_attention_forward)
+_SOFTMAX_FUNCS = {F.softmax, torch.softmax, torch.Tensor.softmax, torch.special.softmax}
+_MATMUL_FUNCS = {torch.matmul, torch.Tensor.matmul, torch.Tensor.__matmul__}
 
 
 @dataclass
@@ -164,11 +167,19 @@ class _Sums:
 
 # ------------------------------------------------------------------------------------------------ the step
 class _TwinMode(TorchFunctionMode):
-    """Runs the model's attention calls untouched, then a grad-free, dropout-free twin the observers see."""
+    """Runs the model's attention calls untouched, then a grad-free, dropout-free twin that capture sees.
 
-    def __init__(self, base: int) -> None:
+    The twin also gives each head's output ``α·v`` before the output projection: SDPA returns it as
+    ``(B, H, Tq, Dh)``; the MHA twin runs with an identity output projection, so it returns the heads side by
+    side (the way :class:`~attnscope.analyses.ablation.HeadIntervention` probes MHA); for a softmax computed by
+    hand, the next matmul of those weights with 4-d values gives it. *observe(name, heads, out_weight)*
+    receives them with the calling attention module's name.
+    """
+
+    def __init__(self, base: int, step: _RecordedStep) -> None:
         super().__init__()
         self.base = base  # stack depth below the tracker's modes
+        self.step = step
 
     def __torch_function__(self, func, types, args=(), kwargs=None):
         kwargs = kwargs or {}
@@ -178,21 +189,41 @@ class _TwinMode(TorchFunctionMode):
             twin.update(kwargs)
             twin["dropout_p"] = 0.0
             with torch.no_grad():
-                func(**{k: v.detach() if isinstance(v, torch.Tensor) else v for k, v in twin.items()})
+                heads = func(**{k: v.detach() if isinstance(v, torch.Tensor) else v for k, v in twin.items()})
+            self.step._observe(_as_4d(heads), None)  # (B, H, Tq, Dh)
             return out
         if func is F.multi_head_attention_forward:
             out = self._untouched(func, args, kwargs)
             bound = _MHA_SIGNATURE.bind(*args, **kwargs)
             bound.apply_defaults()
-            bound.arguments["dropout_p"] = 0.0
-            bound.arguments["need_weights"] = False
+            a = bound.arguments
+            heads, width = int(a["num_heads"]), int(a["embed_dim_to_check"])
+            w_out = a["out_proj_weight"]
+            a.update(dropout_p=0.0, need_weights=False, out_proj_bias=None,
+                     out_proj_weight=torch.eye(width, dtype=w_out.dtype, device=w_out.device))
             with torch.no_grad():
-                func(*bound.args, **bound.kwargs)
+                concat = func(*bound.args, **bound.kwargs)[0]  # (Tq, B, H·Dh) or (Tq, H·Dh): heads side by side
+            if concat.dim() == 2:
+                concat = concat.unsqueeze(1)
+            tq, b, _ = concat.shape
+            per_head = concat.reshape(tq, b, heads, width // heads).permute(1, 2, 0, 3)  # (B, H, Tq, Dh)
+            self.step._observe(per_head, w_out.detach())
             return out
-        return func(*args, **kwargs)
+        out = func(*args, **kwargs)
+        if func in _SOFTMAX_FUNCS:
+            dim = args[1] if len(args) > 1 else kwargs.get("dim")
+            if isinstance(out, torch.Tensor) and out.dim() == 4 and dim in (-1, 3) and self.step._frames:
+                self.step._pending = out
+        elif func in _MATMUL_FUNCS and self.step._pending is not None and len(args) >= 2:
+            weights, values = args[0], args[1]
+            if (isinstance(weights, torch.Tensor) and isinstance(values, torch.Tensor) and values.dim() == 4
+                    and weights.shape == self.step._pending.shape and values.shape[-2] == weights.shape[-1]):
+                self.step._pending = None  # (B, H, Tq, Tk) @ (B, H, Tk, Dh): the weights meet the values
+                self.step._observe(out.detach(), None)
+        return out
 
     def _untouched(self, func, args, kwargs):
-        """Call *func* with the modes of this step (capture's, the observer's) lifted off the stack."""
+        """Call *func* with the modes of this step (capture's) lifted off the stack: the call runs as untracked."""
         lifted = []
         try:
             while torch._C._len_torch_function_stack() > self.base:
@@ -213,6 +244,8 @@ class _RecordedStep:
         self._cap: Any = None
         self._norms: dict[str, list[np.ndarray]] = {}
         self._ratio: dict[str, float] = {}
+        self._frames: list[str] = []  # attention modules running, innermost last
+        self._pending: torch.Tensor | None = None  # the latest hand-computed softmax weights
 
     def __enter__(self) -> _RecordedStep:
         tr = self._tracker
@@ -224,16 +257,19 @@ class _RecordedStep:
         self._exit = stack
         try:
             base = torch._C._len_torch_function_stack()
-            if tr._norms:
-                from attnscope.analyses.ablation import HeadIntervention
-
-                stack.enter_context(HeadIntervention(model, observe=self._observe))
             self._cap = stack.enter_context(capture(model, keep="stats", layers=tr._layers, heads=tr._heads,
                                                     blocks=tr._blocks, residual=bool(tr._block_names)))
             for name in tr._block_names:
                 handle = model.get_submodule(name).register_forward_hook(self._block_hook(name))
                 stack.callback(handle.remove)
-            mode = _TwinMode(base)
+            if tr._norms:
+                for name in tr._attention_names:
+                    module = model.get_submodule(name)
+                    enter = module.register_forward_pre_hook(self._enter_hook(name))
+                    leave = module.register_forward_hook(self._leave_hook(), always_call=True)
+                    stack.callback(enter.remove)
+                    stack.callback(leave.remove)
+            mode = _TwinMode(base, self)
             mode.__enter__()
             stack.callback(_remove_mode, mode)
         except BaseException:
@@ -246,27 +282,42 @@ class _RecordedStep:
         stack, self._exit = self._exit, None
         if stack is None:
             return False
+        self._pending = None
         if exc_type is not None:
             with contextlib.suppress(Exception):
                 stack.close()
             return False
-        stack.close()  # closes capture (its checks may raise), hooks, the observer and the mode
+        stack.close()  # closes capture (its checks may raise), the hooks and the mode
         self._tracker._finish_step(self._step, self._sums())
         return False
 
     # ---------------------------------------------------------------- observers
-    def _observe(self, call: Any, per_head: torch.Tensor) -> None:
+    def _enter_hook(self, name: str):
+        def hook(module: nn.Module, args: tuple) -> None:
+            self._frames.append(name)
+        return hook
+
+    def _leave_hook(self):
+        def hook(module: nn.Module, args: tuple, output: Any) -> None:
+            if self._frames:
+                self._frames.pop()
+        return hook
+
+    def _observe(self, per_head: torch.Tensor, out_weight: torch.Tensor | None) -> None:
         """Head outputs ``(B, H, Tq, Dh)`` of one call: per-head ‖α·v·W_O‖ summed over rows."""
+        if not self._tracker._norms or not self._frames:
+            return
+        name = self._frames[-1]
         b, h, tq, dh = per_head.shape
-        weights = self._tracker._projection(call, h, dh)
+        weights = self._tracker._projection(name, out_weight, h, dh)
         if weights is None:
             return
         with torch.no_grad():
             contrib = torch.einsum("bhqd,hde->bhqe", per_head.float(), weights)  # (B, H, Tq, D)
             norm = torch.linalg.vector_norm(contrib, dim=-1).double().sum(dim=(0, 2)).numpy()  # (H,)
-        total = self._norms.get(call.name)
+        total = self._norms.get(name)
         if total is None or len(total[0]) != h:
-            self._norms[call.name] = [norm, np.full(h, float(b * tq))]
+            self._norms[name] = [norm, np.full(h, float(b * tq))]
         else:
             total[0] = total[0] + norm
             total[1] = total[1] + b * tq
@@ -278,9 +329,9 @@ class _RecordedStep:
                 return
             with torch.no_grad():
                 a = x.detach().abs().float().reshape(-1, x.shape[-1])  # (positions, D)
-                ranked = a.sort(dim=-1).values  # (positions, D)
-                d = ranked.shape[-1]
-                med = (ranked[:, (d - 1) // 2] + ranked[:, d // 2]) / 2  # (positions,): the median, as numpy's
+                d = a.shape[-1]
+                low = a.kthvalue((d + 1) // 2, dim=-1).values  # (positions,); kthvalue beats a full sort 2.5x
+                med = low if d % 2 else (low + a.kthvalue(d // 2 + 1, dim=-1).values) / 2  # numpy's median
                 ratio = float((a.amax(dim=-1) / med.clamp_min(torch.finfo(torch.float32).tiny)).max())
             self._ratio[name] = max(ratio, self._ratio.get(name, -1.0))
         return hook
@@ -311,6 +362,16 @@ def _remove_mode(mode: TorchFunctionMode) -> None:
     finally:
         for other in reversed(above):
             torch._C._push_on_torch_function_stack(other)
+
+
+def _as_4d(t: torch.Tensor) -> torch.Tensor:
+    if t.dim() == 4:
+        return t
+    if t.dim() > 4:
+        return t.reshape(-1, *t.shape[-3:])
+    while t.dim() < 4:
+        t = t.unsqueeze(0)
+    return t
 
 
 def _first_tensor(output: Any) -> torch.Tensor | None:
@@ -353,6 +414,7 @@ class Tracker:
         self._distributed = distributed
         self._proj_cache: dict[str, Any] = {}
         self._block_names: tuple[str, ...] = ()
+        self._attention_names: tuple[str, ...] = ()
         self._out_proj: list[tuple[str, str]] = []
         if model is None:
             return
@@ -362,6 +424,9 @@ class Tracker:
         probe = capture(model, keep="stats", layers=layers, heads=heads, blocks=blocks)
         del probe
         self._block_names = self._resolve_blocks(model, blocks)
+        from attnscope.capture.discovery import map_model
+
+        self._attention_names = map_model(model).attention
         names = [n for n, _ in model.named_modules()]
         for pattern, target in (out_proj or {}).items():
             if target not in names:
@@ -440,24 +505,25 @@ class Tracker:
         for listener in list(self._listeners):
             listener(self, stats)
 
-    def _projection(self, call: Any, heads: int, dh: int) -> torch.Tensor | None:
-        """``(H, Dh, D)`` slices of the output projection of *call*'s module (None when it cannot be found)."""
+    def _projection(self, name: str, out_weight: torch.Tensor | None, heads: int,
+                    dh: int) -> torch.Tensor | None:
+        """``(H, Dh, D)`` slices of the output projection of module *name* (None when it cannot be found)."""
         from attnscope.analyses.heads import _find_projection, _head_weights
 
-        if call.out_weight is not None:
-            return call.out_weight.float().T.reshape(heads, dh, -1)  # (H, Dh, D)
-        found = self._proj_cache.get(call.name)
+        if out_weight is not None:
+            return out_weight.float().T.reshape(heads, dh, -1)  # (H, Dh, D)
+        found = self._proj_cache.get(name)
         if found is None:
             try:
-                found = _find_projection(self._model, call.name, self._out_proj)
+                found = _find_projection(self._model, name, self._out_proj)
             except UnsupportedModelError:
                 found = False
-            self._proj_cache[call.name] = found
+            self._proj_cache[name] = found
         if found is False:
             return None
         where, module = found
         try:
-            return _head_weights(module, heads, dh, call.name, where)
+            return _head_weights(module, heads, dh, name, where)
         except Exception:  # a projection of another width: no norm rather than a wrong one
             return None
 
