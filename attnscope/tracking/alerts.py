@@ -95,18 +95,27 @@ class AlertRules:
     def as_dict(self) -> dict[str, Any]:
         return asdict(self)
 
+    def replace(self, **changes: float) -> AlertRules:
+        """These rules with *changes* (names checked, with suggestions)."""
+        self._check_names(changes)
+        return AlertRules(**{**self.as_dict(), **changes})
+
+    @classmethod
+    def _check_names(cls, options: Any) -> None:
+        from attnscope.errors import suggest
+
+        known = [f.name for f in fields(cls)]
+        for key in options:
+            if key not in known:
+                raise OptionError(f"unknown alert rule {key!r}; known: {', '.join(known)}.{suggest(key, known)}")
+
     @classmethod
     def from_options(cls, options: dict[str, Any] | AlertRules | None) -> AlertRules:
         if options is None:
             return cls()
         if isinstance(options, AlertRules):
             return options
-        known = [f.name for f in fields(cls)]
-        from attnscope.errors import suggest
-
-        for key in options:
-            if key not in known:
-                raise OptionError(f"unknown alert rule {key!r}; known: {', '.join(known)}.{suggest(key, known)}")
+        cls._check_names(options)
         return cls(**options)
 
 

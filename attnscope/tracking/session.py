@@ -554,9 +554,7 @@ class Tracker:
     def alerts(self, **rules: float) -> list[Alert]:
         """Alerts of the run, ``(step, name, head, kind, reason)``; keyword arguments override :class:`AlertRules`."""
         if rules:
-            merged = {**self.rules.as_dict(), **AlertRules.from_options(rules).as_dict()}
-            merged.update(rules)
-            return find_alerts(self.table(), self.residual_table(), AlertRules(**merged))
+            return find_alerts(self.table(), self.residual_table(), self.rules.replace(**rules))
         if self._alerts is None:
             self._alerts = find_alerts(self.table(), self.residual_table(), self.rules)
         return list(self._alerts)

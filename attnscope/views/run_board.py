@@ -82,7 +82,7 @@ class RunDashboard(W.VBox):
         self.set_trait("head", scene.g)
         self.set_trait("statistic", scene.statistic)
         W.link((self, "statistic"), (self.statistic_choice, "value"))
-        W.link((self, "live"), (self.live_choice, "value"))
+        self.live_choice.observe(self._on_live_choice, names="value")
         self.head_choice.observe(self._on_head_choice, names="value")
         scene.strip_src.selected.on_change("indices", self._on_tap)
         self.live = live
@@ -142,8 +142,15 @@ class RunDashboard(W.VBox):
             return False
         return bool(proposal["value"])
 
+    def _on_live_choice(self, change: Any) -> None:
+        self.live = change["new"]
+        if self.live_choice.value != self.live:  # refused (a loaded run): the button shows what holds
+            self.live_choice.value = self.live
+
     @traitlets.observe("live")
     def _on_live(self, change: Any) -> None:
+        if self.live_choice.value != change["new"]:
+            self.live_choice.value = change["new"]
         if change["new"] and self._stop_listening is None:
             self._stop_listening = self.scene.tracker.listen(self._on_recorded)
         elif not change["new"] and self._stop_listening is not None:

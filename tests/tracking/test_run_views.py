@@ -70,7 +70,7 @@ def test_live_mode_follows_the_run_until_stopped():
     model = sdpa_decoder()
     tr = attnscope.track(model, every=2)
     board = attnscope.dashboard(tr)
-    assert board.live and board.scene.strip_src.data["step"] == []
+    assert board.live and board.live_choice.value and board.scene.strip_src.data["step"] == []
     train(model, "sdpa", 5, tr)  # steps 0, 2, 4 recorded while the widget listens
     assert sorted(set(board.scene.strip_src.data["step"])) == [0, 2, 4]
     assert len(board.scene.stream_src.data["xs"]) == 2 and board.scene.stream_src.data["xs"][0] == [0, 2, 4]
@@ -88,8 +88,8 @@ def test_loaded_run_shows_but_does_not_follow(collapsed_run, tmp_path):
     loaded = attnscope.load(tmp_path / "run.attnscope")
     board = attnscope.dashboard(loaded)
     assert not board.live
-    board.live = True
-    assert not board.live and "nothing to follow" in board.problem.value
+    board.live_choice.value = True  # the button pressed
+    assert not board.live and not board.live_choice.value and "nothing to follow" in board.problem.value
     assert board.scene.strip_src.data["step"] == collapsed_run.table()["step"].tolist()
 
 

@@ -249,6 +249,8 @@ def test_rules_are_options_checked_at_the_door():
     tr = attnscope.track(model, every=1)
     train(model, "mha", 12, tr, before_step=plant_collapse(0, 2, 6))
     assert tr.alerts() and tr.alerts(collapse_at=0.05) == []  # stricter rule: the planted fall is not enough
+    with pytest.raises(OptionError, match="collapse_at"):
+        tr.alerts(colapse_at=0.05)
     with pytest.raises(OptionError, match="after step"):
         with tr.step(3):
             pass
