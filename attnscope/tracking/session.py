@@ -218,8 +218,12 @@ class _TwinMode(TorchFunctionMode):
             weights, values = args[0], args[1]
             if (isinstance(weights, torch.Tensor) and isinstance(values, torch.Tensor) and values.dim() == 4
                     and weights.shape == self.step._pending.shape and values.shape[-2] == weights.shape[-1]):
-                self.step._pending = None  # (B, H, Tq, Tk) @ (B, H, Tk, Dh): the weights meet the values
-                self.step._observe(out.detach(), None)
+                pending, self.step._pending = self.step._pending, None  # (B, H, Tq, Tk) @ (B, H, Tk, Dh)
+                if weights is pending:
+                    self.step._observe(out.detach(), None)
+                else:  # attention dropout came in between: the heads' dropout-free outputs, as for the twins
+                    with torch.no_grad():
+                        self.step._observe(pending.detach() @ values.detach(), None)  # (B, H, Tq, Dh)
         return out
 
     def _untouched(self, func, args, kwargs):

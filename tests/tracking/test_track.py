@@ -290,3 +290,35 @@ def test_path_appends_each_recorded_step_as_it_goes(tmp_path):
     with pytest.warns(attnscope.AttnscopeWarning, match="cut short"):
         again = attnscope.load(path)
     assert [s.step for s in again.steps] == [0, 3]
+
+
+def test_hf_eager_attention_statistics_and_output_norms_match_hf_and_brute_force():
+    """The softmax path (HF eager): statistics vs HF's own output_attentions, norms through GPT-2's Conv1D."""
+    from transformers import GPT2Config, GPT2Model
+
+    torch.manual_seed(0)
+    config = GPT2Config(vocab_size=32, n_positions=16, n_embd=16, n_layer=2, n_head=2, attn_pdrop=0.5,
+                        resid_pdrop=0.0, embd_pdrop=0.0)  # attention dropout on: statistics are dropout-free
+    model = GPT2Model._from_config(config, attn_implementation="eager").train()
+    ids = torch.randint(0, 32, (2, 7), generator=torch.Generator().manual_seed(1))
+    tr = attnscope.track(model, every=1)
+    with tr.step(0):
+        model(ids).last_hidden_state.sum().backward()
+    table = tr.table()
+    model.eval()  # reference: HF's eager output_attentions (dropout off) and the hidden states entering each block
+    with torch.no_grad():
+        out = model(ids, output_attentions=True, output_hidden_states=True)
+    for layer in range(1):  # the second layer's input carried the first's attention dropout in the tracked forward
+        w = out.attentions[layer].double().numpy()  # (B, H, T, T)
+        block = model.h[layer]
+        with torch.no_grad():
+            h = block.ln_1(out.hidden_states[layer])
+            v = block.attn.c_attn(h)[..., 32:].double().numpy()  # (B, T, D): the values
+            wo = block.attn.c_proj.weight.double().numpy()  # Conv1D keeps (in, out)
+        rows = table[table["name"] == f"h.{layer}.attn"].sort_values("head")
+        for hd in range(2):
+            ent = [entropy(w[b, hd, q, : q + 1]) for b in range(2) for q in range(7)]  # scipy.stats.entropy
+            assert rows.iloc[hd]["entropy"] == pytest.approx(np.mean(ent), rel=1e-5)
+            head_out = w[:, hd] @ v[..., hd * 8:(hd + 1) * 8]  # (B, T, Dh), brute force
+            contrib = head_out @ wo[hd * 8:(hd + 1) * 8]  # (B, T, D)
+            assert rows.iloc[hd]["output_norm"] == pytest.approx(np.linalg.norm(contrib, axis=-1).mean(), rel=1e-5)
