@@ -128,3 +128,52 @@ def test_run_view_follows_training_live_and_answers_a_tap(lab, browser):
     board.screenshot(path=str(ARTIFACTS / "run_dashboard_lab.png"))
     assert not problems, problems
     page.close()
+
+
+PAGE_JS = """() => {
+  const d = window.Bokeh?.documents[0];
+  if (!d || !d.is_idle) return null;
+  return {curve: d.get_model_by_name('as-run-curve-fig').title.text,
+          strip: d.get_model_by_name('as-run-strip-fig').title.text,
+          points: Array.from(d.get_model_by_name('as-run-curve').data.value),
+          marks: Array.from(d.get_model_by_name('as-run-curve-alerts').data.step)};
+}"""
+
+
+def test_exported_run_page_answers_a_tap_and_a_menu_offline(browser, tmp_path):
+    import torch
+
+    import attnscope
+
+    torch.manual_seed(0)
+    layer = torch.nn.TransformerEncoderLayer(16, 4, 32, dropout=0.0, batch_first=True)
+    model = torch.nn.TransformerEncoder(layer, 2, enable_nested_tensor=False).train()
+    tr = attnscope.track(model, every=1)
+    g = torch.Generator().manual_seed(1)
+    for step in range(12):
+        if step == 6:  # planted: head 1 of the first layer collapses
+            with torch.no_grad():
+                model.layers[0].self_attn.in_proj_weight[4:8] *= 30.0
+        with tr.step(step):
+            model(torch.randn(2, 6, 16, generator=g))
+    path = attnscope.export_html(tr, tmp_path / "run.html")
+    page = browser.new_page()
+    problems: list[str] = []
+    page.on("pageerror", lambda e: problems.append(str(e)))
+    page.on("request", lambda r: r.url.startswith("http") and problems.append(f"network: {r.url}"))
+    page.goto(path.as_uri())
+    page.wait_for_function(f"() => ({PAGE_JS})() !== null", timeout=30_000)
+    assert page.evaluate(PAGE_JS)["curve"].startswith("layers.0.self_attn · h0")
+    px, py = page.evaluate(SCREEN_JS, ["as-run-strip-fig", 8, 1])  # the cell of layers.0 head 1 at step 8
+    page.mouse.click(px, py)
+    page.wait_for_function(f"() => ({PAGE_JS})()?.curve.startsWith('layers.0.self_attn · h1')", timeout=10_000)
+    state = page.evaluate(PAGE_JS)
+    table = tr.table().query("name == 'layers.0.self_attn' and head == 1")
+    assert state["points"] == pytest.approx(table["entropy_ratio"].tolist(), rel=1e-6)  # the page's JS filtered
+    assert state["marks"] == [a.step for a in tr.alerts() if a.head == 1 and a.name == "layers.0.self_attn"] != []
+    page.locator("select").nth(1).select_option("sink_mass")  # the statistic menu (inside Bokeh's shadow root)
+    page.wait_for_function(f"() => ({PAGE_JS})()?.strip.endsWith('sink_mass')", timeout=10_000)
+    assert page.evaluate(PAGE_JS)["points"] == pytest.approx(table["sink_mass"].tolist(), rel=1e-6)
+    page.screenshot(path=str(ARTIFACTS / "run_page.png"))
+    assert not problems, problems
+    page.close()
