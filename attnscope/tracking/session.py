@@ -94,20 +94,21 @@ class _Sums:
     norms: dict[str, list[np.ndarray]]  # name -> [sum of per-row norms (H,), rows (H,)]
     blocks: dict[str, list[float]]  # name -> [norm sum, positions, norm max, massive ratio max]
 
-    def stats(self, step: int, kept: Mapping[str, tuple[int, ...]]) -> StepStats:
+    def stats(self, step: int) -> StepStats:
         out = StepStats(step)
         for name in self.attention.names:
             sums: HeadSums = self.attention.sums[name]
             means = sums.means()
             heads = self.attention.heads[name]
-            norm = self._norms(name, heads)
+            norm = self._norms(name, heads)  # (H,) every head of the module, NaN where unknown
             for i, h in enumerate(heads):
-                others = np.delete(norm, i)
+                others = np.delete(norm, h) if len(norm) > h else np.array([])
                 other_mean = float(np.mean(others)) if len(others) else float("nan")
+                own = float(norm[h]) if len(norm) > h else float("nan")
                 row = {"name": name, "head": int(h), "rows": int(sums.rows[i])}
                 row.update({c: float(means[c][i]) for c in STAT_COLUMNS})
-                row["output_norm"] = float(norm[i])
-                row["output_relative"] = (float(norm[i]) / other_mean if np.isfinite(other_mean) and other_mean > 0
+                row["output_norm"] = own
+                row["output_relative"] = (own / other_mean if np.isfinite(other_mean) and other_mean > 0
                                           else float("nan"))
                 out.heads.append(row)
         for name, (total, count, biggest, ratio) in self.blocks.items():
@@ -118,14 +119,14 @@ class _Sums:
         return out
 
     def _norms(self, name: str, heads: tuple[int, ...]) -> np.ndarray:
+        """Mean output norm of every head of module *name* (all of them, kept or not); empty when unknown."""
         if name not in self.norms:
-            return np.full(len(heads), np.nan)
+            return np.array([])
         total, rows = self.norms[name]
         if len(total) <= max(heads):
-            return np.full(len(heads), np.nan)
+            return np.array([])
         with np.errstate(invalid="ignore", divide="ignore"):
-            mean = np.where(rows > 0, total / np.where(rows > 0, rows, 1), np.nan)
-        return mean[list(heads)]
+            return np.where(rows > 0, total / np.where(rows > 0, rows, 1), np.nan)
 
     def all_reduce(self) -> _Sums:
         """Sum (and max) every rank's sums of this step; a collective, every rank must call it."""
@@ -496,8 +497,7 @@ class Tracker:
     def _finish_step(self, step: int, sums: _Sums) -> None:
         if self._dist_on():
             sums = sums.all_reduce()
-        kept = dict(sums.attention.heads)
-        stats = sums.stats(step, kept)
+        stats = sums.stats(step)
         self._add(stats)
 
     def _add(self, stats: StepStats) -> None:

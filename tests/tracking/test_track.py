@@ -322,3 +322,18 @@ def test_hf_eager_attention_statistics_and_output_norms_match_hf_and_brute_force
             head_out = w[:, hd] @ v[..., hd * 8:(hd + 1) * 8]  # (B, T, Dh), brute force
             contrib = head_out @ wo[hd * 8:(hd + 1) * 8]  # (B, T, D)
             assert rows.iloc[hd]["output_norm"] == pytest.approx(np.linalg.norm(contrib, axis=-1).mean(), rel=1e-5)
+
+
+def test_selected_heads_keep_their_indices_and_compare_with_every_other_head():
+    model = mha_stack()
+    tr = attnscope.track(model, every=1, heads=[1, 3], layers=["0.layers.0.self_attn"])
+    everything = attnscope.track(model, every=1, layers=["0.layers.0.self_attn"])
+    x = torch.randn(2, 5, WIDTH)
+    model.eval()  # the same forward twice
+    for t in (tr, everything):
+        with t.step(0):
+            model(x)
+    part, full = tr.table(), everything.table()
+    assert part["head"].tolist() == [1, 3]
+    cols = ["entropy", "sink_mass", "output_norm", "output_relative"]
+    np.testing.assert_allclose(part[cols].to_numpy(), full.set_index("head").loc[[1, 3], cols].to_numpy(), rtol=1e-6)
