@@ -337,3 +337,25 @@ def test_selected_heads_keep_their_indices_and_compare_with_every_other_head():
     assert part["head"].tolist() == [1, 3]
     cols = ["entropy", "sink_mass", "output_norm", "output_relative"]
     np.testing.assert_allclose(part[cols].to_numpy(), full.set_index("head").loc[[1, 3], cols].to_numpy(), rtol=1e-6)
+
+
+def test_a_run_file_is_validated_on_load(tmp_path):
+    from attnscope.errors import CaptureFileError
+
+    def write(name: str, *lines: str):
+        path = tmp_path / name
+        path.write_text("".join(line + "\n" for line in lines))
+        return path
+
+    header = '{"format": "attnscope-run", "version": 1, "every": 2, "rules": {}, "model": null}'
+    with pytest.raises(CaptureFileError, match="not an attnscope run file"):
+        attnscope.load(write("other.jsonl", '{"format": "something else"}'))
+    with pytest.raises(CaptureFileError, match="version 7"):
+        attnscope.load(write("future.jsonl", header.replace('"version": 1', '"version": 7')))
+    with pytest.raises(CaptureFileError, match="line 2"):
+        attnscope.load(write("text.jsonl", header, '{"step": 0, "heads": [{"name": "a", "head": 0, '
+                                                   '"entropy": "__import__(\'os\')"}], "blocks": []}'))
+    with pytest.raises(CaptureFileError, match="run header"):
+        attnscope.load(write("rules.jsonl", header.replace('"rules": {}', '"rules": {"colapse_at": 0.2}')))
+    ok = attnscope.load(write("ok.jsonl", header, '{"step": 4, "heads": [], "blocks": []}'))
+    assert [s.step for s in ok.steps] == [4] and ok.every == 2
