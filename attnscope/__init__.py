@@ -60,6 +60,9 @@ _LAZY = {
     "aggregate_heads": "attnscope.analyses.aggregate",
     "stitch_steps": "attnscope.analyses.generation",
     "compare_captures": "attnscope.analyses.compare",
+    # watching training
+    "Tracker": "attnscope.tracking",
+    "track": "attnscope.tracking",
     # views (need the notebook extra: ipywidgets, bokeh, jupyter_bokeh)
     "dashboard": "attnscope.views",
     "export_html": "attnscope.views",

@@ -41,9 +41,18 @@ _SUMS = [f.name for f in fields(HeadSums)]
 
 
 def save(cap: Capture, path: str | os.PathLike) -> None:
-    """Write *cap* (a finished capture) to *path* as a zip of JSON and ``.npy`` arrays."""
+    """Write *cap* (a finished capture) to *path* as a zip of JSON and ``.npy`` arrays.
+
+    A :class:`~attnscope.tracking.Tracker` (from :func:`attnscope.track`) is written as a run file instead
+    (JSON lines, see :mod:`attnscope.tracking.store`); :func:`load` reads both.
+    """
+    if type(cap).__name__ == "Tracker":
+        from attnscope.tracking.store import write_run
+
+        write_run(path, cap._header(), cap.steps)
+        return
     if not isinstance(cap, Capture):
-        raise OptionError(f"save() expects a Capture; received {type(cap).__name__}")
+        raise OptionError(f"save() expects a Capture or a Tracker; received {type(cap).__name__}")
     cap._closed("save()")
     arrays: dict[str, np.ndarray] = {}
     entries = []
@@ -79,8 +88,23 @@ def save(cap: Capture, path: str | os.PathLike) -> None:
 
 
 def load(path: str | os.PathLike) -> Capture:
-    """Read a capture written by :func:`save`; anything else raises :class:`~attnscope.errors.CaptureFileError`."""
+    """Read a capture written by :func:`save`; anything else raises :class:`~attnscope.errors.CaptureFileError`.
+
+    A run file (written by :func:`save` of a tracker, or by ``attnscope.track(..., path=...)`` as it went)
+    comes back as a :class:`~attnscope.tracking.Tracker` that can be read and shown, not recorded into.
+    """
     where = os.fspath(path)
+    from attnscope.tracking.store import is_run_file
+
+    if is_run_file(where):
+        from attnscope.tracking.session import Tracker
+        from attnscope.tracking.store import read_run
+
+        header, steps = read_run(where)
+        try:
+            return Tracker._from_steps(steps, int(header["every"]), header.get("rules") or {})
+        except (KeyError, TypeError, ValueError, OptionError) as err:
+            raise CaptureFileError(f"{where}: the run header is not valid ({err})") from err
     try:
         with zipfile.ZipFile(where) as zf:
             manifest = _read_manifest(zf, where)

@@ -52,3 +52,13 @@ def test_readme_heads_example_finds_the_planted_heads():
     found = {(f.name, f.head) for f in ns["attnscope"].dead_heads(ns["cap"], output_norms=ns["norms"])}
     planted = {tuple(p) for kind in ("uniform", "sink", "silent") for p in PLANTED[kind]}
     assert found == planted
+
+
+def test_readme_tracking_example_says_what_it_shows(tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    ns = _run_block("attnscope.track(")
+    tr = ns["tr"]
+    assert [s.step for s in tr.steps] == [0, 10, 20] and tr.alerts() == []  # "none in this healthy run"
+    assert ns["attnscope"].load("run.jsonl").table().equals(tr.table())
+    ns["board"].stop()
+    tr.close()

@@ -58,6 +58,11 @@ class HeadTotals:
     def empty(cls) -> HeadTotals:
         return cls((), {}, {}, {}, 0)
 
+    @classmethod
+    def from_records(cls, records: Sequence[Any]) -> HeadTotals:
+        """Totals of the attention records of one batch (a capture's ``.attention``), counted as one batch."""
+        return _batch_totals(records)
+
     def merge(self, other: HeadTotals) -> HeadTotals:
         """Totals of both parts (modules seen in either; the same module must keep the same heads)."""
         names = list(self.names) + [n for n in other.names if n not in self.heads]

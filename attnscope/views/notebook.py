@@ -290,7 +290,9 @@ def dashboard(cap: Any, tokens: Any = None, *, ids: Any = None, findings: Any = 
     >>> board.head = 1                                                   # or tap a tile in the atlas
 
     Args:
-        cap: a capture from :func:`attnscope.capture` (or :func:`attnscope.load`).
+        cap: a capture from :func:`attnscope.capture` (or :func:`attnscope.load`); a tracker from
+            :func:`attnscope.track` gets the training-run view (:mod:`attnscope.views.run_board`), which follows
+            the run while it records (``statistic``, ``head`` and ``bokehjs`` apply).
         tokens: token strings: a list of str, a list per batch item, ``{"source": ..., "target": ...}`` for
             encoder–decoder models, or a tokenizer-like callable with *ids* (see :mod:`attnscope.views.labels`).
         ids: ``(B, T)`` token ids, for a callable *tokens*.
@@ -308,6 +310,10 @@ def dashboard(cap: Any, tokens: Any = None, *, ids: Any = None, findings: Any = 
     Returns:
         A :class:`Dashboard` (an ``ipywidgets.VBox``).
     """
+    if type(cap).__name__ == "Tracker":  # a training run (attnscope.track): its own view, live while it records
+        from attnscope.views.run_board import run_dashboard
+
+        return run_dashboard(cap, statistic=statistic, head=head or 0, bokehjs=bokehjs)
     scene = Scene(cap, tokens, ids=ids, findings=findings, checks=checks, distances=distances,
                   statistic=statistic, tile=tile, lens_side=lens_side)
     if item:

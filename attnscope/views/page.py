@@ -165,7 +165,8 @@ def export_html(cap: Any, path: str | os.PathLike, tokens: Any = None, *, ids: A
     PosixPath('heads.html')
 
     Args:
-        cap: a capture from :func:`attnscope.capture` (or :func:`attnscope.load`).
+        cap: a capture from :func:`attnscope.capture` (or :func:`attnscope.load`); a tracker from
+            :func:`attnscope.track` gets the training-run page (``statistic``, ``head`` and ``title`` apply).
         path: file to write.
         tokens, ids, findings, checks, distances, statistic, tile: as for :func:`attnscope.dashboard`.
         head: the head selected when the page opens.
@@ -176,6 +177,11 @@ def export_html(cap: Any, path: str | os.PathLike, tokens: Any = None, *, ids: A
     Returns:
         The path written.
     """
+    if type(cap).__name__ == "Tracker":  # a training run (attnscope.track): its own page
+        from attnscope.views.run_board import export_run_html
+
+        return export_run_html(cap, path, statistic=statistic, head=head,
+                               title="attnscope training run" if title == "attnscope dashboard" else title)
     if max_bytes <= 0:
         raise OptionError(f"max_bytes: expected a positive number of bytes, received {max_bytes}")
     side = _lens_side_for(cap, lens_side, max_bytes)

@@ -70,7 +70,7 @@ def shows_dashboard(cell) -> bool:
 # ------------------------------------------------------------------------------------ stored notebooks
 def test_one_notebook_per_story():
     assert set(_names()) == {"debug_seq2seq.ipynb", "verify_causal_masking.ipynb",
-                             "dead_and_duplicate_heads.ipynb", "your_own_model.ipynb"}
+                             "dead_and_duplicate_heads.ipynb", "your_own_model.ipynb", "watch_training.ipynb"}
 
 
 def test_index_lists_every_notebook():
@@ -181,11 +181,27 @@ def check_your_own_model(out: str, cells: list) -> None:
     grab(r"saved and loaded: same weights True, same head table True", out)
 
 
+def check_watch_training(out: str, cells: list) -> None:
+    healthy = grab(r"healthy \(lr 0.003\): loss ([\d.]+) -> ([\d.]+) .*, (\d+) recorded steps, (\d+) alerts", out)
+    collapsing = grab(r"collapsing \(lr 0.1\): loss ([\d.]+) -> ([\d.]+) .*, (\d+) recorded steps, (\d+) alerts", out)
+    assert int(healthy[3]) == int(collapsing[3]) == 20 and int(healthy[4]) == 0 and int(collapsing[4]) > 0
+    # reference: the training loss itself (plain cross-entropy, outside the tracker): the collapsing run stalls higher
+    assert float(collapsing[2]) > float(healthy[2]) + 0.2
+    first = grab(r"first collapse alert in blocks.0.attn at step (\d+), heads \[([\d, ]+)\]", out)
+    assert int(first[1]) <= 15 and first[2] == "0, 1, 2, 3"
+    # reference: softmax(QK^T/sqrt(d) + causal mask) by hand and scipy.stats.entropy per row
+    assert float(grab(r"hand check: largest difference between tracker and hand-computed entropy ratio: (\S+)\n",
+                      out)[1]) < 1e-5
+    grab(r"saved and loaded: same table True, same alerts True", out)
+    assert shows_dashboard(cells[-1]), "the last cell should display the run's view"
+
+
 CHECKS = {
     "debug_seq2seq.ipynb": check_debug_seq2seq,
     "verify_causal_masking.ipynb": check_verify_causal_masking,
     "dead_and_duplicate_heads.ipynb": check_dead_and_duplicate_heads,
     "your_own_model.ipynb": check_your_own_model,
+    "watch_training.ipynb": check_watch_training,
 }
 
 
