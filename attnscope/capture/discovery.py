@@ -68,8 +68,22 @@ def map_model(model: nn.Module) -> ModelMap:
                 full = f"{name}.{child_name}" if name else child_name
                 if not isinstance(child, CONTAINERS) and holds_attention_below(full):
                     candidates.add(full)
-    # a block inside another block is part of it (a sub-layer); the outermost are the residual stream
-    blocks = [c for c in candidates if not any(o != c and (o == "" or c.startswith(o + ".")) for o in candidates)]
+    # A candidate that holds a stack of blocks (torch's layers, or two or more sibling candidates that are not
+    # attention modules themselves) is a model or a wrapper around one, not a block: Sequential(encoder, head).
+    # Otherwise a block inside another block is part of it (T5's attention sub-layers): the outermost count.
+    def stacked(d: str) -> bool:
+        if d in attn_set or d in helpers:
+            return False
+        if isinstance(modules[d], NN_LAYERS):
+            return True
+        parent = d.rsplit(".", 1)[0] if "." in d else ""
+        return any(s != d and s not in attn_set and s not in helpers
+                   and (s.rsplit(".", 1)[0] if "." in s else "") == parent for s in candidates)
+
+    modules = dict(first)
+    wrappers = {c for c in candidates if any(d.startswith(c + ".") and stacked(d) for d in candidates)}
+    kept = candidates - wrappers
+    blocks = [c for c in kept if not any(o != c and (o == "" or c.startswith(o + ".")) for o in kept)]
     order = {name: i for i, (name, _) in enumerate(named)}
     blocks = sorted(set(blocks), key=order.__getitem__)
     return ModelMap(names=names, attention=tuple(attention), leaves=leaves, blocks=tuple(blocks),

@@ -623,3 +623,16 @@ def test_a_router_inside_an_attention_module_is_not_its_attention():
     with torch.no_grad(), attnscope.capture(m) as cap:
         m(torch.randn(2, 5, D))
     assert [(r.name, r.shape) for r in cap.attention] == [("", (2, H, 5, 5))]  # the (B, T, E) gate is left out
+
+
+def test_a_model_wrapped_in_sequential_keeps_its_own_layers_as_blocks():
+    torch.manual_seed(0)
+    layer = nn.TransformerEncoderLayer(D, 2, 2 * D, dropout=0.0, batch_first=True)
+    model = nn.Sequential(nn.TransformerEncoder(layer, 2, enable_nested_tensor=False), nn.Linear(D, 3)).eval()
+    x = torch.randn(2, 5, D)
+    with torch.no_grad(), attnscope.capture(model) as cap:
+        model(x)
+    assert [r.name for r in cap.residual] == ["0.layers.0", "0.layers.1"]  # not the wrapped encoder "0"
+    with torch.no_grad():
+        stream = model[0].layers[0](x)  # reference: torch's own layer output
+    np.testing.assert_allclose(cap.residual[0].norms, stream.norm(dim=-1).numpy(), rtol=1e-5)
