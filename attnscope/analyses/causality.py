@@ -310,15 +310,22 @@ def _steady(modules: Sequence[nn.Module], seed: int, device: torch.device) -> It
 
 
 class _Probe:
-    """One probe run: which inputs may change, which outputs are compared, and what was measured."""
+    """One probe run: which inputs may change, which outputs are compared, and what was measured.
+
+    The contract is one bool array ``forbidden`` ``(B, T, T)``: ``[b, i, j]`` True when output ``i`` of item
+    ``b`` must not depend on input ``j``. Causality, padding and any declared pattern are instances of it.
+    """
 
     def __init__(self, runner: Runner, allowed: torch.Tensor, observed: torch.Tensor, trials: int, tol: float,
-                 causal: bool) -> None:
-        self.runner, self.trials, self.tol, self.causal = runner, trials, tol, causal
+                 forbidden: torch.Tensor) -> None:
+        self.runner, self.trials, self.tol = runner, trials, tol
         self.allowed, self.observed = allowed, observed  # (B, T) bool: inputs perturbed, outputs compared
+        self.forbidden = forbidden & observed[:, :, None]  # (B, T, T)
         T = runner.T
         self.pos = torch.arange(T)
         self.dependency = np.full((T, T), np.nan)
+        self.breach = np.full((T, T), np.nan)  # like dependency, maxed only over items where the pair is forbidden
+        self.breach_item = np.zeros((T, T), dtype=np.int64)  # the item giving that maximum
         self.leak = np.zeros(T)  # largest change seen at each output position where it must not move
 
     def rows(self, masks: list[torch.Tensor]) -> np.ndarray:
@@ -328,11 +335,13 @@ class _Probe:
         return out.reshape(len(masks), self.trials, self.runner.B, self.runner.T)
 
     def must_hold(self, mask: torch.Tensor) -> np.ndarray:
-        """(B, T) bool: outputs that must not move when *mask* is perturbed."""
-        if self.causal:
-            first = int(self.pos[mask.any(0)].min()) if bool(mask.any()) else self.runner.T
-            return np.broadcast_to((self.pos < first).numpy(), mask.shape) & self.observed.numpy()
-        return self.observed.numpy()
+        """(B, T) bool: outputs that must not move when *mask* ``(B, T)`` is perturbed.
+
+        Output ``i`` of item ``b`` must hold when item ``b`` perturbs something and every input it perturbs
+        is forbidden to ``i``.
+        """
+        touches = (mask[:, None, :] & ~self.forbidden).any(-1)  # (B, T): a perturbed input is allowed to i
+        return (~touches & mask.any(1, keepdim=True) & self.observed).numpy()
 
     def note_blocks(self, masks: list[torch.Tensor], changes: np.ndarray) -> None:
         """Record leaks seen when blocks of inputs were perturbed together."""
@@ -348,10 +357,16 @@ class _Probe:
         masks = [self.allowed & (self.pos == j)[None] for j in js]
         changes = self.rows(masks)  # (J, trials, B, T)
         obs = self.observed.numpy()
+        bad = self.forbidden.numpy()  # (B, T, T)
         for j, mask, change in zip(js, masks, changes):
             valid = obs & mask.any(1).numpy()[:, None]  # (B, T): items where j was perturbed, outputs compared
-            col = np.where(valid[None], change, -np.inf).max(axis=(0, 1))
+            per_item = change.max(axis=0)  # (B, T)
+            col = np.where(valid, per_item, -np.inf).max(axis=0)
             self.dependency[:, j] = np.where(np.isneginf(col), np.nan, col)
+            hit = np.where(valid & bad[:, :, j], per_item, -np.inf)  # (B, T)
+            top = hit.max(axis=0)
+            self.breach[:, j] = np.where(np.isneginf(top), np.nan, top)
+            self.breach_item[:, j] = hit.argmax(axis=0)
         self.note_blocks(masks, changes)
 
     def violations(self) -> list[Violation]:
@@ -359,9 +374,7 @@ class _Probe:
         found = []
         for i in range(T):
             for j in range(T):
-                if self.causal and j <= i:
-                    continue
-                m = self.dependency[i, j]
+                m = self.breach[i, j]
                 if np.isfinite(m) and m > self.tol or m == np.inf:
                     found.append(Violation(i, j, float(m)))
         return found
@@ -389,7 +402,8 @@ class _Probe:
                 picks = span
             if hi is None and picks[-1] != n:
                 picks[-1] = n
-            masks = [self.allowed & torch.isin(self.pos, torch.tensor(candidates[:k]))[None] for k in picks]
+            masks = [self.allowed & self.forbidden[:, i] & torch.isin(self.pos, torch.tensor(candidates[:k]))[None]
+                     for k in picks]
             changes = self.rows(masks)[:, :, obs, i].reshape(len(picks), -1).max(axis=1)
             moved = [(k, float(c)) for k, c in zip(picks, changes) if c > self.tol]
             if moved:
@@ -604,7 +618,8 @@ def check_causal(
         T, B = runner.T, runner.B
         tol = default_tolerance(runner.dtype) if tol is None else tol
         everything = torch.ones(B, T, dtype=torch.bool)
-        probe = _Probe(runner, everything, everything, trials, tol, causal=True)
+        later = torch.ones(T, T, dtype=torch.bool).triu(1).expand(B, T, T)  # (B, T, T): j > i is forbidden
+        probe = _Probe(runner, everything, everything, trials, tol, later)
         cuts = screen_splits(T, splits)
         blocks = [everything & (probe.pos > s)[None] for s in cuts]
         if mode == "exhaustive":
@@ -697,7 +712,7 @@ def check_padding(
         runner = Runner(fn, x, seq_dim=seq_dim, batch_dim=batch_dim, vocab_size=vocab_size, noise=noise,
                         seed=seed, rows_per_call=rows_per_call, max_bytes=max_bytes, model=root, observed=real)
         tol = default_tolerance(runner.dtype) if tol is None else tol
-        probe = _Probe(runner, pads, real, trials, tol, causal=False)
+        probe = _Probe(runner, pads, real, trials, tol, real[:, :, None] & pads[:, None, :])  # (B, T, T)
         padded = [int(j) for j in torch.nonzero(pads.any(0)).flatten()]
         if mode == "exhaustive":
             probe.columns(padded)
