@@ -237,3 +237,54 @@ def test_a_model_returning_only_the_last_position_gets_a_hint() -> None:
     for x in (ids(B=1), ids(B=2)):
         with pytest.raises(ShapeError, match=r"one position only.*lambda ids: model\(ids, targets=ids\)"):
             check_causal(lambda s: model(s)[:, -1:], x, model=model)
+
+
+# -- the command line -------------------------------------------------------------------------------------------
+
+CLI_ZOO = '''
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+class Win(nn.Module):
+    def __init__(self, keys):
+        super().__init__()
+        torch.manual_seed(0)
+        self.keys, self.emb, self.qkv = keys, nn.Embedding(30, 16), nn.Linear(16, 48)
+
+    def forward(self, ids):
+        x = self.emb(ids)
+        q, k, v = self.qkv(x).view(*ids.shape, 3, 2, 8).permute(2, 0, 3, 1, 4)
+        i, j = torch.arange(ids.size(1))[:, None], torch.arange(ids.size(1))[None]
+        return F.scaled_dot_product_attention(q, k, v, attn_mask=(j <= i) & (i - j < self.keys)).transpose(1, 2).flatten(2)
+
+def good():
+    return Win(4)
+
+def wide():
+    return Win(5)
+
+def packed():
+    m = Win(100)
+    docs = torch.tensor([[0] * 5 + [1] * 7])
+    allowed = (docs[:, :, None] == docs[:, None, :]) & torch.ones(12, 12, dtype=torch.bool).tril()
+    return m, torch.randint(0, 30, (1, 12)), allowed, m
+'''
+
+
+def test_check_mask_command_exits_1_on_a_violation(tmp_path, monkeypatch, capsys) -> None:
+    from attnscope.cli import main
+
+    (tmp_path / "maskzoo.py").write_text(CLI_ZOO)
+    monkeypatch.chdir(tmp_path)
+    assert main(["check-mask", "maskzoo:good", "--window", "4", "--seq", "16"]) == 0
+    assert "keeps to the declared pattern" in capsys.readouterr().out
+    assert main(["check-mask", "maskzoo:wide", "--window", "4", "--seq", "16", "--mode", "exhaustive"]) == 1
+    assert "declared window 4, uses 5" in capsys.readouterr().out
+    assert main(["check-mask", "maskzoo:packed"]) == 1  # a plain causal model over two packed documents
+    assert "breaks the declared pattern" in capsys.readouterr().out
+    assert main(["check-mask", "maskzoo:good"]) == 2  # no pattern at all
+    assert "needs the pattern" in capsys.readouterr().err
+    with pytest.raises(SystemExit):
+        main(["check-mask", "--help"])
+    assert "--window" in capsys.readouterr().out
