@@ -415,8 +415,10 @@ def resolve_axes(fn: Callable[[torch.Tensor], Any], x: Any, model: nn.Module | N
         forwards = 3
         if m0 is True and m1 is False:
             return Axes(0, 1, "a probing forward: items are independent along axis 1", forwards)
-        if m0 is False and m1 is True:
+        if m0 is False and m1 is not False:
             return Axes(1, 0, "a probing forward: items are independent along axis 0", forwards)
+        if m1 is False and m0 is None:
+            return Axes(0, 1, "a probing forward: items are independent along axis 1", forwards)
         if m0 is False and m1 is False and not kinds:
             return Axes(1, 0, "default: a probing forward saw no dependence across either axis", forwards)
         if m0 and m1:  # everything moved: rule out a callable that is not deterministic before refusing

@@ -27,8 +27,9 @@ The screen (default) is group testing. For each batch item it perturbs, in one c
 - *earlier blocks*: all inputs up to a split point ``s``; outputs that may see none of them must hold;
 - *later blocks*: all inputs after ``s``; outputs that may see none of them must hold.
 
-Split points are ⌈log2 T⌉ evenly spaced positions plus every position where the earliest allowed input of
-an output jumps (document starts) and where the pattern changes shape. The screen tests (finds unless every
+Split points are ⌈log2 T⌉ evenly spaced positions plus every position where the pattern changes shape
+(the earliest or latest allowed input of an output jumps or changes its step: document starts, the end of
+a prefix, a window filling up). The screen tests (finds unless every
 draw leaves the output unchanged):
 
 - any dependence on an input forbidden to the whole group of the output: across documents always (groups
@@ -142,19 +143,22 @@ def _shape(allowed: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
     return torch.where(has, first, -1), last
 
 
-def _groups(first: torch.Tensor, last: torch.Tensor, size: int) -> list[tuple[int, int]]:
-    """Runs ``[lo, hi)`` of consecutive outputs of one item, cut every *size* and where the shape changes."""
+def _groups(first: torch.Tensor, last: torch.Tensor, size: int) -> tuple[list[tuple[int, int]], list[int]]:
+    """Runs ``[lo, hi)`` of consecutive outputs of one item, cut every *size* and where the shape changes;
+    and the positions where the shape changes (document starts, the end of a prefix, a window filling up)."""
     T = first.shape[0]
     step = torch.stack([first.diff(), last.diff()], 1)  # (T-1, 2)
-    runs, lo = [], 0
+    runs, shape_cuts, lo = [], [], 0
     for i in range(1, T):
         changed = i >= 2 and not torch.equal(step[i - 1], step[i - 2])
         jump = int(step[i - 1, 0]) not in (0, 1) or int(step[i - 1, 1]) not in (0, 1)
+        if changed or jump:
+            shape_cuts.append(i)
         if changed or jump or i - lo >= size:
             runs.append((lo, i))
             lo = i
     runs.append((lo, T))
-    return runs
+    return runs, shape_cuts
 
 
 def screen_blocks(forbidden: torch.Tensor, allowed: torch.Tensor) -> list[torch.Tensor]:
@@ -173,15 +177,13 @@ def screen_blocks(forbidden: torch.Tensor, allowed: torch.Tensor) -> list[torch.
     per_item: list[list[torch.Tensor]] = []
     for b in range(B):
         blocks: list[torch.Tensor] = []
-        runs = _groups(first[b], last[b], size)
+        runs, shape_cuts = _groups(first[b], last[b], size)
         for lo, hi in runs:
             block = forbidden[b, lo:hi].all(0)  # (T,) forbidden to every output of the run
             if bool(block.any()):
                 blocks.append(block)
         cuts = {round(k * (T - 2) / max(1, n - 1)) for k in range(n)} if T >= 2 else set()
-        cuts |= {lo - 1 for lo, _ in runs if lo > 0}
-        cuts |= {int(f) - 1 for f in first[b].unique() if int(f) > 0}
-        cuts |= {int(z) for z in last[b].unique() if 0 <= int(z) < T - 1}
+        cuts |= {c - 1 for c in shape_cuts}
         for s in sorted(cuts):
             for block in (pos <= s, pos > s):
                 hold = (~(block[None] & ~forbidden[b]).any(-1)).any()  # some output may see none of it
