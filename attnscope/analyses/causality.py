@@ -337,10 +337,11 @@ def _layer_layout(root: nn.Module | None) -> dict[str, bool]:
         seq_first = getattr(map_model(root), "seq_first", frozenset())
     except Exception:  # noqa: BLE001 - the static map is a hint here; the probing forward decides the rest
         seq_first = frozenset()
-    for name in sorted(seq_first):
+    layers = sorted(seq_first)
+    for name in layers:
         found[name or type(root).__name__] = True
     for name, m in root.named_modules():
-        if isinstance(m, nn.MultiheadAttention) and not any(name.startswith(f + ".") for f in seq_first if f):
+        if isinstance(m, nn.MultiheadAttention) and not any(name.startswith(f + ".") for f in layers if f):
             found[name or type(root).__name__] = not m.batch_first
     return found
 
