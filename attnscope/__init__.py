@@ -46,6 +46,15 @@ _LAZY = {
     "assert_padding": "attnscope.analyses.causality",
     "check_causal": "attnscope.analyses.causality",
     "check_padding": "attnscope.analyses.causality",
+    # declared dependency patterns
+    "MaskReport": "attnscope.analyses.contracts",
+    "assert_mask": "attnscope.analyses.contracts",
+    "check_mask": "attnscope.analyses.contracts",
+    "causal_pattern": "attnscope.analyses.patterns",
+    "documents_pattern": "attnscope.analyses.patterns",
+    "pattern_from_predicate": "attnscope.analyses.patterns",
+    "prefix_pattern": "attnscope.analyses.patterns",
+    "window_pattern": "attnscope.analyses.patterns",
     # heads
     "dead_heads": "attnscope.analyses.heads",
     "duplicate_heads": "attnscope.analyses.heads",

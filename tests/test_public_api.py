@@ -11,6 +11,8 @@ EXPECTED = [
     "head_clusters", "head_distances", "head_importance", "head_output_norms", "leak_summary", "leak_table",
     "load", "save", "stitch_steps", "tap",
     "Tracker", "track",
+    "MaskReport", "assert_mask", "causal_pattern", "check_mask", "documents_pattern", "pattern_from_predicate",
+    "prefix_pattern", "window_pattern",
 ]
 
 
