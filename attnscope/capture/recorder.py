@@ -67,6 +67,9 @@ class Recorder:
         self.counters = _Counters()
         self.thread: int | None = None
         self.open = False
+        #: (module name, kept tensor, its version counter when recorded): kept maps that may share memory with
+        #: a tensor the model goes on using (eager paths keep the model's own weights, copying nothing)
+        self.borrowed: list[tuple[str, torch.Tensor, int]] = []
         self._tls = threading.local()
 
     # ---------------------------------------------------------------- hooks: who is calling
@@ -142,7 +145,8 @@ class Recorder:
                     "layers=/heads=, a smaller batch, or raise max_bytes=.")
             weights = compute(slice(None), list(heads))
             stats = None
-            kept = weights.numpy()
+            kept = weights.numpy()  # shares memory with *weights*: no copy
+            self.borrowed.append((frame.name, weights, weights._version))
             if replace_at is None:
                 self.counters.kept_bytes += size
         else:
@@ -162,6 +166,16 @@ class Recorder:
             return len(self.attention) - 1
         self.attention[replace_at] = record
         return replace_at
+
+    def check_borrowed(self) -> list[str]:
+        """Names of modules whose kept weights were changed in place after they were recorded; forgets them all.
+
+        A tensor's version counter goes up on every in-place operation (views share it), so a model that,
+        say, applies an in-place dropout to its softmax output after capture took it is caught here.
+        """
+        changed = sorted({name for name, t, version in self.borrowed if t._version != version})
+        self.borrowed.clear()
+        return changed
 
     def record_residual(self, name: str, output: Any) -> None:
         """Keep the per-position norms of block *name*'s output."""
@@ -202,15 +216,19 @@ def _reduce(compute: Compute, b: int, heads: tuple[int, ...], allowed: torch.Ten
     return groups[0] if len(groups) == 1 else HeadSums.concat(groups)
 
 
-def take(w: torch.Tensor, sl: slice, hs: list[int], shared: bool) -> torch.Tensor:
-    """Batch slice *sl*, heads *hs* of ``(B, H, Tq, Tk)`` weights as float32 memory that no one else holds.
+def take(w: torch.Tensor, sl: slice, hs: list[int], shared: bool = True) -> torch.Tensor:
+    """Batch slice *sl*, heads *hs* of ``(B, H, Tq, Tk)`` weights as float32, copying only what is kept.
 
-    Picking heads by a list copies; all heads of a tensor no one else holds are taken as they are (no copy).
+    The weights of eager paths exist already (the model's softmax output, MHA's per-head weights): when every
+    head is kept and they are float32 and contiguous, the record takes them as they are, with no copy, as
+    ``output_attentions`` hands them out. Picking heads (advanced indexing) or widening half precision copies
+    just the kept part. ``shared`` says whether the model or its caller also holds *w*; such weights are
+    watched for in-place changes until the capture closes (:meth:`Recorder.check_borrowed`).
     """
-    if not shared and hs == list(range(w.shape[1])):
-        part = w[sl]
+    if hs == list(range(w.shape[1])):
+        part = w[sl]  # (b, H, Tq, Tk)  a view
     else:
-        part = w[sl][:, hs]  # advanced indexing: a copy
+        part = w[sl][:, hs]  # (b, h, Tq, Tk)  advanced indexing: a copy of the kept heads only
     return part.float().contiguous()
 
 

@@ -268,6 +268,12 @@ class Capture:
 
     def _finish(self) -> None:
         c = self._rec.counters
+        changed = self._rec.check_borrowed()
+        if changed:
+            warnings.warn(f"attention modules {', '.join(changed[:5])} changed their attention weights in place after "
+                          "capture took them (capture keeps the model's own weights without copying them); the "
+                          "records hold the changed values. Capture with heads= (which copies) or make the "
+                          "in-place operation out of place", AttnscopeWarning, stacklevel=3)
         if c.foreign:
             warnings.warn(f"{c.foreign} module calls of the model ran on another thread than the one that "
                           "opened the capture and were not recorded; run the forward on the capturing thread, or "
