@@ -55,13 +55,14 @@ class Recorder:
     """Call stack and record keeping of one capture (the lifecycle lives in :class:`~attnscope.capture.session.Capture`)."""
 
     def __init__(self, model_map: ModelMap, *, keep: str, max_bytes: int, selected: set[str] | None,
-                 heads: tuple[int, ...] | None, kinds: list[tuple[str, str]]) -> None:
+                 heads: tuple[int, ...] | None, kinds: list[tuple[str, str]], sdpa: str = "beside") -> None:
         self.map = model_map
         self.keep = keep
         self.max_bytes = max_bytes
         self.selected = selected
         self.heads = heads
         self.kinds = kinds
+        self.sdpa = sdpa  # "beside": fused SDPA untouched, weights recomputed; "weights": output = weights @ V
         self.attention: list[AttentionRecord] = []
         self.residual: list[ResidualRecord] = []
         self.counters = _Counters()
