@@ -55,41 +55,55 @@ def head_sums(weights: torch.Tensor, allowed: torch.Tensor | None = None, query_
         :class:`~attnscope.records.HeadSums` with one entry per head.
     """
     w = weights.detach()  # (B, H, Tq, Tk)
-    if w.dtype not in (torch.float32, torch.float64):
-        w_dtype = torch.float32  # widened piece by piece below
-    else:
-        w_dtype = w.dtype
+    w_dtype = w.dtype if w.dtype in (torch.float32, torch.float64) else torch.float32  # others: widened per piece
     b, h, tq, tk = w.shape
+    w3 = w.reshape(b * h, tq, tk)  # (B*H, Tq, Tk)  a view for stored or freshly made maps
     a = None if allowed is None else allowed.to(torch.bool)
     while a is not None and a.dim() < 4:
         a = a.unsqueeze(0)
-    dist = _distance_matrix(tq, tk, int(query_offset))  # (Tq, Tk)
-    # per-row results, (B, H, Tq) each: small (T times smaller than the map)
-    rows = {k: torch.empty(b, h, tq, dtype=w_dtype) for k in ("sum", "entropy", "max", "sink", "distance", "leak")}
-    n_allowed = torch.full((b, h, tq), tk, dtype=torch.int64) if a is None else None
-    if a is not None:
+    dist = _distance_matrix(tq, tk, int(query_offset)).to(w_dtype)  # (Tq, Tk)
+    # per-row results over the flat (B*H*Tq) rows: small (Tk times smaller than the map)
+    rows = {k: torch.empty(b * h * tq, dtype=w_dtype) for k in ("sum", "entropy", "max", "distance", "leak")}
+    if a is None:
+        n_allowed = torch.full((b, h, tq), tk, dtype=torch.int64)
+        first = torch.zeros(b * h * tq, 1, dtype=torch.int64)
+    else:
         n_allowed = a.sum(dim=-1).expand(b, h, tq)  # (B, H, Tq)  the mask is small: (B or 1, H or 1, Tq, Tk)
-        first = a.to(torch.uint8).argmax(dim=-1, keepdim=True)  # (B or 1, H or 1, Tq, 1)  first allowed key
-    step = max(1, PIECE_BYTES // max(1, b * h * tk * 4))
-    for r0 in range(0, tq, step):
-        r1 = min(tq, r0 + step)
-        p = w[:, :, r0:r1]  # (B, H, r, Tk)  a view: no copy of the map
+        first = a.to(torch.uint8).argmax(dim=-1).expand(b, h, tq).reshape(-1, 1)  # (B*H*Tq, 1) first allowed key
+        a_full = a.expand(b, h, tq, tk)
+    slab = tq * tk * 4  # bytes of one (batch item, head) map in float32
+    if slab <= PIECE_BYTES:
+        per = max(1, PIECE_BYTES // slab)
+        pieces = [(s0, min(b * h, s0 + per), 0, tq) for s0 in range(0, b * h, per)]  # whole maps
+    else:
+        per = max(1, PIECE_BYTES // (tk * 4))
+        pieces = [(s0, s0 + 1, r0, min(tq, r0 + per)) for s0 in range(b * h) for r0 in range(0, tq, per)]
+    for s0, s1, r0, r1 in pieces:
+        p = w3[s0:s1, r0:r1]  # (s, r, Tk)  a contiguous view: no copy of the map
         if p.dtype != w_dtype:
             p = p.to(w_dtype)
-        torch.sum(p, dim=-1, out=rows["sum"][:, :, r0:r1])
-        torch.amax(p, dim=-1, out=rows["max"][:, :, r0:r1])
-        lg = p.clamp_min(_TINY).log_().mul_(p)  # (B, H, r, Tk)  w ln w with 0 ln 0 = 0; the piece is in cache
-        torch.sum(lg, dim=-1, out=rows["entropy"][:, :, r0:r1])
-        torch.mul(p, dist[r0:r1].to(w_dtype), out=lg)
-        torch.sum(lg, dim=-1, out=rows["distance"][:, :, r0:r1])
+        lo, hi = s0 * tq + r0, (s1 - 1) * tq + r1  # its rows in the flat row order
+        out = {k: v[lo:hi].view(s1 - s0, r1 - r0) for k, v in rows.items()}  # (s, r) each
+        torch.sum(p, dim=-1, out=out["sum"])
+        torch.amax(p, dim=-1, out=out["max"])
+        tmp = p.clamp_min(_TINY).log_().mul_(p)  # (s, r, Tk)  w ln w with 0 ln 0 = 0, while the piece is in cache
+        torch.sum(tmp, dim=-1, out=out["entropy"])
+        torch.mul(p, dist[r0:r1], out=tmp)
+        torch.sum(tmp, dim=-1, out=out["distance"])
         if a is None:
-            rows["sink"][:, :, r0:r1] = p[..., 0]
-            rows["leak"][:, :, r0:r1] = 0.0
+            out["leak"].zero_()
+            continue
+        if a.shape[0] == 1 and a.shape[1] == 1:
+            ap = a[0, 0, r0:r1]  # (r, Tk)  shared by every map
         else:
-            ap = a[:, :, r0:r1]  # (B or 1, H or 1, r, Tk)
-            rows["sink"][:, :, r0:r1] = p.gather(-1, first[:, :, r0:r1].expand(b, h, r1 - r0, 1)).squeeze(-1)
-            torch.mul(p, (~ap).to(w_dtype), out=lg)
-            torch.sum(lg, dim=-1, out=rows["leak"][:, :, r0:r1])
+            idx = torch.arange(s0, s1)
+            ap = a_full[idx // h, idx % h, r0:r1]  # (s, r, Tk)  a small copy of the piece's mask
+        torch.mul(p, ~ap, out=tmp)
+        torch.sum(tmp, dim=-1, out=out["leak"])
+    sink = w.reshape(b * h * tq, tk).gather(-1, first).reshape(b, h, tq).to(w_dtype) if w.is_contiguous() else \
+        w.gather(-1, first.reshape(b, h, tq, 1)).reshape(b, h, tq).to(w_dtype)  # (B, H, Tq)
+    rows = {k: v.view(b, h, tq) for k, v in rows.items()}
+    rows["sink"] = sink
     # weights are >= 0, so a NaN or inf anywhere in a row shows in its sum
     finite = torch.isfinite(rows["sum"])  # (B, H, Tq)
     counted = finite & (n_allowed >= 1)

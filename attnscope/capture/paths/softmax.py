@@ -28,7 +28,7 @@ def on_call(rec: Recorder, func, args, kwargs):
         return out
     scores = x.detach()
     b, h, tq, tk = out.shape  # (B, H, Tq, Tk)
-    allowed = masks.compact(~(scores <= masks.FORBID_AT), (b, h, tq, tk))
+    allowed = masks.allowed_from_scores(scores)  # (B or 1, H or 1, Tq, Tk) bool, or None
     kind = frame.kind_hint or "self"
     offset = 0 if kind == "cross" else max(tk - tq, 0)
     heads = rec.kept_heads(h, frame.name)
