@@ -126,11 +126,13 @@ class Recorder:
 
     def record(self, frame: Frame, kind: str, shape: tuple[int, int, int, int], heads: tuple[int, ...],
                allowed: torch.Tensor | None, causal: bool, source: str, offset: int, compute: Compute,
-               replace_at: int | None = None) -> int:
+               replace_at: int | None = None, builds: bool = False) -> int:
         """Keep one call (maps or statistics) and return its index in :attr:`attention`.
 
         ``allowed`` is the compact ``(B or 1, H or 1, Tq, Tk)`` bool mask or None; ``replace_at`` refines an
-        earlier record of the same call (a ``tap`` of a softmax's output).
+        earlier record of the same call (a ``tap`` of a softmax's output). ``builds`` says that *compute* makes
+        the weights anew (a recomputation): kept maps are then built piece by piece into one array, so no
+        whole-map temporary (scores beside weights) exists at any time.
         """
         b, _, tq, tk = shape
         if allowed is not None and allowed.shape[1] > 1:
@@ -144,7 +146,14 @@ class Recorder:
                     f"bring the capture to {_mb(self.counters.kept_bytes + size)}, over its budget of "
                     f"{_mb(self.max_bytes)}. Use keep='stats' (per-head statistics only), select fewer "
                     "layers=/heads=, a smaller batch, or raise max_bytes=.")
-            weights = compute(slice(None), list(heads))
+            step = max(1, _STATS_CHUNK_BYTES // max(per_item, 1))
+            if builds and b > step:
+                weights = torch.empty(b, len(heads), tq, tk)  # (B, h, Tq, Tk)  the kept maps, filled in pieces
+                for start in range(0, b, step):
+                    sl = slice(start, min(b, start + step))
+                    weights[sl] = compute(sl, list(heads))
+            else:
+                weights = compute(slice(None), list(heads))
             stats = None
             kept = weights.numpy()  # shares memory with *weights*: no copy
             self.borrowed.append((frame.name, weights, weights._version))

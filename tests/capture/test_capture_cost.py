@@ -3,8 +3,8 @@ the opt-in ``sdpa="weights"`` (output computed from the weights capture builds) 
 
 from __future__ import annotations
 
+import importlib
 import math
-import warnings
 
 import numpy as np
 import pytest
@@ -169,3 +169,23 @@ def test_sdpa_weights_mode_leaves_calls_that_need_gradients_untouched():
 def test_sdpa_option_fails_at_the_door():
     with pytest.raises(OptionError, match="'beside' or 'weights'"):
         attnscope.capture(gpt2("sdpa"), sdpa="weight")
+
+
+def test_recomputed_maps_built_in_pieces_equal_an_independent_softmax(monkeypatch):
+    recorder = importlib.import_module("attnscope.capture.recorder")
+
+    monkeypatch.setattr(recorder, "_STATS_CHUNK_BYTES", 2 * 4 * 6 * 6 * 4)  # two batch items per piece
+    torch.manual_seed(0)
+    q, k, v = torch.randn(5, 4, 6, 8), torch.randn(5, 4, 6, 8), torch.randn(5, 4, 6, 8)
+
+    class Block(nn.Module):
+        def forward(self, q, k, v):
+            return F.scaled_dot_product_attention(q, k, v, is_causal=True)
+
+    block = Block()
+    with attnscope.capture(block, layers=[""], residual=False) as cap:
+        out = block(q, k, v)
+    causal = torch.ones(6, 6, dtype=torch.bool).tril()
+    w = (q @ k.transpose(-2, -1) / math.sqrt(8)).masked_fill(~causal, float("-inf")).softmax(-1)  # independent
+    np.testing.assert_allclose(cap.attention[0].weights, w.numpy(), atol=1e-6)
+    assert torch.equal(out, F.scaled_dot_product_attention(q, k, v, is_causal=True))  # untouched by default

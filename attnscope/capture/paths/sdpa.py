@@ -53,7 +53,7 @@ def on_call(rec: Recorder, func, args, kwargs):
         return masks.sdpa_weights(q4[sl][:, hs], k4[sl][:, kh], m, is_causal, p.get("scale"))
 
     causal = is_causal or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset))
-    rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute)
+    rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute, builds=True)
     return out
 
 
