@@ -1,7 +1,13 @@
 """Per-head statistics of one attention call, reduced to mergeable sums.
 
 One implementation serves both capture modes (``keep="stats"`` reduces each call on the fly, ``keep="maps"``
-reduces the same full-precision weights before they are stored) and the analyses built on top.
+reduces the stored weights when the head table is asked for) and the analyses built on top.
+
+The reduction is one pass over memory: the map is walked in pieces of query rows small enough to stay in a
+core's cache (:data:`PIECE_BYTES`), and every statistic of a piece (entropy, maximum, sink mass, distance, leak
+mass) is taken while the piece is there. Float32 weights are read as they are (no copy of the map); half
+precision pieces are widened to float32 one piece at a time. Per-row values are float32 (relative error about
+1e-7); they are summed over rows in float64.
 
 >>> import torch
 >>> w = torch.full((1, 1, 4, 4), 0.25)            # uniform over 4 keys
@@ -11,23 +17,36 @@ reduces the same full-precision weights before they are stored) and the analyses
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 import torch
 
 from attnscope.records import HeadSums
 
-__all__ = ["head_sums"]
+__all__ = ["PIECE_BYTES", "head_sums"]
+
+#: Bytes of float32 weights one piece holds: half of a core's 2 MiB L2 on the reference machine, so the piece
+#: and the few row-sized temporaries of its reductions stay in cache.
+PIECE_BYTES = 1024**2
+
+_TINY = torch.finfo(torch.float32).tiny
 
 
-def _forbidden_float(allowed: torch.Tensor) -> torch.Tensor:
-    return (~allowed).to(torch.float32)
+@functools.lru_cache(maxsize=16)
+def _distance_matrix(tq: int, tk: int, offset: int) -> torch.Tensor:
+    """``(Tq, Tk)`` float32 ``|i + offset - k|``. Cached: never modify it."""
+    q_pos = torch.arange(tq, dtype=torch.float32) + offset
+    k_pos = torch.arange(tk, dtype=torch.float32)
+    return (q_pos[:, None] - k_pos[None, :]).abs()
 
 
 def head_sums(weights: torch.Tensor, allowed: torch.Tensor | None = None, query_offset: int = 0) -> HeadSums:
-    """Reduce attention weights to per-head sums over (batch, query) rows.
+    """Reduce attention weights to per-head sums over (batch, query) rows, in one pass over cache-sized pieces.
 
     Args:
-        weights: ``(B, H, Tq, Tk)`` attention weights (any float dtype; reduced in float32, summed in float64).
+        weights: ``(B, H, Tq, Tk)`` attention weights (any float dtype; float32 is read in place, other dtypes
+            are widened to float32 one piece at a time; row sums are added up in float64).
         allowed: bool, broadcastable to ``(B, H, Tq, Tk)``, True where the mask lets a query see a key;
             ``None`` when no mask was applied.
         query_offset: absolute position of query 0 on the key axis, for ``mean_distance``.
@@ -35,42 +54,75 @@ def head_sums(weights: torch.Tensor, allowed: torch.Tensor | None = None, query_
     Returns:
         :class:`~attnscope.records.HeadSums` with one entry per head.
     """
-    w = weights.detach().float()  # (B, H, Tq, Tk)
+    w = weights.detach()  # (B, H, Tq, Tk)
+    w_dtype = w.dtype if w.dtype in (torch.float32, torch.float64) else torch.float32  # others: widened per piece
     b, h, tq, tk = w.shape
-    row_sum = w.sum(dim=-1)  # (B, H, Tq); weights are >= 0, so a NaN or inf anywhere in a row shows here
-    finite = torch.isfinite(row_sum)
-    if not bool(finite.all()):
-        w = torch.where(finite.unsqueeze(-1), w, torch.zeros((), dtype=w.dtype))
-    if allowed is None:
+    w3 = w.reshape(b * h, tq, tk)  # (B*H, Tq, Tk)  a view for stored or freshly made maps
+    a = None if allowed is None else allowed.to(torch.bool)
+    while a is not None and a.dim() < 4:
+        a = a.unsqueeze(0)
+    dist = _distance_matrix(tq, tk, int(query_offset)).to(w_dtype)  # (Tq, Tk)
+    # per-row results over the flat (B*H*Tq) rows: small (Tk times smaller than the map)
+    rows = {k: torch.empty(b * h * tq, dtype=w_dtype) for k in ("sum", "entropy", "max", "distance", "leak")}
+    if a is None:
         n_allowed = torch.full((b, h, tq), tk, dtype=torch.int64)
-        first = torch.zeros((b, h, tq, 1), dtype=torch.int64)
-        leak = torch.zeros((b, h, tq))
+        first = torch.zeros(b * h * tq, 1, dtype=torch.int64)
     else:
-        a = allowed.to(torch.bool)  # broadcastable, often (1, 1, Tq, Tk): keep it small
-        n_allowed = a.sum(dim=-1).expand(b, h, tq)  # (B, H, Tq)
-        first = a.to(torch.uint8).argmax(dim=-1, keepdim=True).expand(b, h, tq, 1)  # first allowed key
-        leak = (w * _forbidden_float(a)).sum(dim=-1)  # (B, H, Tq)
-    counted = finite & (n_allowed >= 1)  # (B, H, Tq)
+        n_allowed = a.sum(dim=-1).expand(b, h, tq)  # (B, H, Tq)  the mask is small: (B or 1, H or 1, Tq, Tk)
+        first = a.to(torch.uint8).argmax(dim=-1).expand(b, h, tq).reshape(-1, 1)  # (B*H*Tq, 1) first allowed key
+        a_full = a.expand(b, h, tq, tk)
+    slab = tq * tk * 4  # bytes of one (batch item, head) map in float32
+    if slab <= PIECE_BYTES:
+        per = max(1, PIECE_BYTES // slab)
+        pieces = [(s0, min(b * h, s0 + per), 0, tq) for s0 in range(0, b * h, per)]  # whole maps
+    else:
+        per = max(1, PIECE_BYTES // (tk * 4))
+        pieces = [(s0, s0 + 1, r0, min(tq, r0 + per)) for s0 in range(b * h) for r0 in range(0, tq, per)]
+    for s0, s1, r0, r1 in pieces:
+        p = w3[s0:s1, r0:r1]  # (s, r, Tk)  a contiguous view: no copy of the map
+        if p.dtype != w_dtype:
+            p = p.to(w_dtype)
+        lo, hi = s0 * tq + r0, (s1 - 1) * tq + r1  # its rows in the flat row order
+        out = {k: v[lo:hi].view(s1 - s0, r1 - r0) for k, v in rows.items()}  # (s, r) each
+        torch.sum(p, dim=-1, out=out["sum"])
+        torch.amax(p, dim=-1, out=out["max"])
+        tmp = p.clamp_min(_TINY).log_().mul_(p)  # (s, r, Tk)  w ln w with 0 ln 0 = 0, while the piece is in cache
+        torch.sum(tmp, dim=-1, out=out["entropy"])
+        torch.mul(p, dist[r0:r1], out=tmp)
+        torch.sum(tmp, dim=-1, out=out["distance"])
+        if a is None:
+            out["leak"].zero_()
+            continue
+        if a.shape[0] == 1 and a.shape[1] == 1:
+            ap = a[0, 0, r0:r1]  # (r, Tk)  shared by every map
+        else:
+            idx = torch.arange(s0, s1)
+            ap = a_full[idx // h, idx % h, r0:r1]  # (s, r, Tk)  a small copy of the piece's mask
+        torch.mul(p, ~ap, out=tmp)
+        torch.sum(tmp, dim=-1, out=out["leak"])
+    sink = w.reshape(b * h * tq, tk).gather(-1, first).reshape(b, h, tq).to(w_dtype) if w.is_contiguous() else \
+        w.gather(-1, first.reshape(b, h, tq, 1)).reshape(b, h, tq).to(w_dtype)  # (B, H, Tq)
+    rows = {k: v.view(b, h, tq) for k, v in rows.items()}
+    rows["sink"] = sink
+    # weights are >= 0, so a NaN or inf anywhere in a row shows in its sum
+    finite = torch.isfinite(rows["sum"])  # (B, H, Tq)
+    counted = finite & (n_allowed >= 1)
     with_choice = counted & (n_allowed >= 2)
-    # -Σ w ln w with 0 ln 0 = 0; ln of the clamped weight is vectorised where torch.special.entr is not (4x here)
-    entropy = -(w * torch.log(w.clamp_min(torch.finfo(w.dtype).tiny))).sum(dim=-1)  # (B, H, Tq)
-    ratio = entropy / torch.log(n_allowed.clamp_min(2).to(w.dtype))
-    q_pos = torch.arange(tq, dtype=w.dtype) + query_offset
-    k_pos = torch.arange(tk, dtype=w.dtype)
-    dist = (q_pos[:, None] - k_pos[None, :]).abs()  # (Tq, Tk)
-    distance = (w * dist).sum(dim=-1)  # (B, H, Tq)
+    entropy = -rows["entropy"]
+    ratio = entropy / torch.log(n_allowed.clamp_min(2).to(entropy.dtype))
 
     def total(x: torch.Tensor, where: torch.Tensor) -> np.ndarray:
-        return (x.double() * where).sum(dim=(0, 2)).numpy()  # (H,)
+        x = torch.where(where, x.double(), torch.zeros((), dtype=torch.float64))  # NaN rows drop out
+        return x.sum(dim=(0, 2)).numpy()  # (H,)
 
     return HeadSums(
         rows=counted.double().sum(dim=(0, 2)).numpy(),
         entropy=total(entropy, counted),
         ratio_rows=with_choice.double().sum(dim=(0, 2)).numpy(),
         entropy_ratio=total(ratio, with_choice),
-        max_weight=total(w.amax(dim=-1), counted),
-        sink_mass=total(w.gather(-1, first).squeeze(-1), counted),
-        distance=total(distance, counted),
-        leak_mass=total(leak, counted),
+        max_weight=total(rows["max"], counted),
+        sink_mass=total(rows["sink"], counted),
+        distance=total(rows["distance"], counted),
+        leak_mass=total(rows["leak"], counted),
         nonfinite=(~finite).double().sum(dim=(0, 2)).numpy(),
     )

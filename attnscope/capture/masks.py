@@ -18,7 +18,7 @@ import math
 
 import torch
 
-__all__ = ["FORBID_AT", "causal_allowed", "compact", "is_causal_mask", "sdpa_weights"]
+__all__ = ["FORBID_AT", "allowed_from_scores", "causal_allowed", "compact", "is_causal_mask", "sdpa_weights"]
 
 #: A float mask value at or below this forbids the key (``-inf``, ``finfo.min``, ``-1e9``, ``-1e4`` do).
 FORBID_AT = -1.0e4
@@ -97,6 +97,26 @@ def compact(allowed: torch.Tensor | None, shape: tuple[int, int, int, int]) -> t
     if a.shape[0] > 1 and bool((a == a[:1]).all()):
         a = a[:1]
     return a.contiguous()
+
+
+def allowed_from_scores(scores: torch.Tensor) -> torch.Tensor | None:
+    """The compact allowed mask (as :func:`compact` gives it) of ``(B, H, Tq, Tk)`` scores a softmax received.
+
+    A key is forbidden where its score is at most :data:`FORBID_AT`. Most calls apply one mask to every batch
+    item and head (a causal mask, no padding): the minimum and maximum over the (B·H) maps find that out and
+    gives the ``(1, 1, Tq, Tk)`` mask without building a ``(B, H, Tq, Tk)`` bool array; other calls take the
+    general way.
+    """
+    b, h, tq, tk = scores.shape
+    if b * h > 1 and scores.is_contiguous():
+        flat = scores.reshape(b * h, tq * tk)
+        low, high = flat.amin(dim=0), flat.amax(dim=0)  # (Tq*Tk,) each; 4x faster than aminmax over dim 0
+        forbidden_somewhere, forbidden_everywhere = low <= FORBID_AT, high <= FORBID_AT
+        if torch.equal(forbidden_somewhere, forbidden_everywhere):
+            if not bool(forbidden_somewhere.any()):
+                return None
+            return (~forbidden_somewhere).reshape(1, 1, tq, tk)
+    return compact(~(scores <= FORBID_AT), (b, h, tq, tk))
 
 
 def is_causal_mask(allowed: torch.Tensor | None, tq: int, tk: int, offset: int) -> bool:

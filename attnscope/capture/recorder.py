@@ -76,19 +76,23 @@ class Recorder:
     """Call stack and record keeping of one capture (the lifecycle lives in :class:`~attnscope.capture.session.Capture`)."""
 
     def __init__(self, model_map: ModelMap, *, keep: str, max_bytes: int, selected: set[str] | None,
-                 heads: tuple[int, ...] | None, kinds: list[tuple[str, str]]) -> None:
+                 heads: tuple[int, ...] | None, kinds: list[tuple[str, str]], sdpa: str = "beside") -> None:
         self.map = model_map
         self.keep = keep
         self.max_bytes = max_bytes
         self.selected = selected
         self.heads = heads
         self.kinds = kinds
+        self.sdpa = sdpa  # "beside": fused SDPA untouched, weights recomputed; "weights": output = weights @ V
         self.attention: list[AttentionRecord] = []
         self.residual: list[ResidualRecord] = []
         self.counters = _Counters()
         self.thread: int | None = None
         self.open = False
         self.muted = 0  # > 0 while an attnscope computation runs the model inside this capture (session.muted)
+        #: (module name, kept tensor, its version counter when recorded): kept maps that may share memory with
+        #: a tensor the model goes on using (eager paths keep the model's own weights, copying nothing)
+        self.borrowed: list[tuple[str, torch.Tensor, int]] = []
         self._tls = threading.local()
 
     # ---------------------------------------------------------------- hooks: who is calling
@@ -157,11 +161,13 @@ class Recorder:
 
     def record(self, frame: Frame, kind: str, shape: tuple[int, int, int, int], heads: tuple[int, ...],
                allowed: torch.Tensor | None, causal: bool, source: str, offset: int, compute: Compute,
-               replace_at: int | None = None) -> int:
+               replace_at: int | None = None, builds: bool = False) -> int:
         """Keep one call (maps or statistics) and return its index in :attr:`attention`.
 
         ``allowed`` is the compact ``(B or 1, H or 1, Tq, Tk)`` bool mask or None; ``replace_at`` refines an
-        earlier record of the same call (a ``tap`` of a softmax's output).
+        earlier record of the same call (a ``tap`` of a softmax's output). ``builds`` says that *compute* makes
+        the weights anew (a recomputation): kept maps are then built piece by piece into one array, so no
+        whole-map temporary (scores beside weights) exists at any time.
         """
         b, _, tq, tk = shape
         target = frame.target()
@@ -177,9 +183,17 @@ class Recorder:
                     f"bring the capture to {_mb(self.counters.kept_bytes + size)}, over its budget of "
                     f"{_mb(self.max_bytes)}. Use keep='stats' (per-head statistics only), select fewer "
                     "layers=/heads=, a smaller batch, or raise max_bytes=.")
-            weights = compute(slice(None), list(heads))
+            step = max(1, _STATS_CHUNK_BYTES // max(per_item, 1))
+            if builds and b > step:
+                weights = torch.empty(b, len(heads), tq, tk)  # (B, h, Tq, Tk)  the kept maps, filled in pieces
+                for start in range(0, b, step):
+                    sl = slice(start, min(b, start + step))
+                    weights[sl] = compute(sl, list(heads))
+            else:
+                weights = compute(slice(None), list(heads))
             stats = None
-            kept = weights.numpy()
+            kept = weights.numpy()  # shares memory with *weights*: no copy
+            self.borrowed.append((target.name, weights, weights._version))
             if replace_at is None:
                 self.counters.kept_bytes += size
         else:
@@ -199,6 +213,16 @@ class Recorder:
             return len(self.attention) - 1
         self.attention[replace_at] = record
         return replace_at
+
+    def check_borrowed(self) -> list[str]:
+        """Names of modules whose kept weights were changed in place after they were recorded; forgets them all.
+
+        A tensor's version counter goes up on every in-place operation (views share it), so a model that,
+        say, applies an in-place dropout to its softmax output after capture took it is caught here.
+        """
+        changed = sorted({name for name, t, version in self.borrowed if t._version != version})
+        self.borrowed.clear()
+        return changed
 
     def record_residual(self, name: str, output: Any) -> None:
         """Keep the per-position norms of block *name*'s output."""
@@ -254,15 +278,19 @@ def _reduce(compute: Compute, b: int, heads: tuple[int, ...], allowed: torch.Ten
     return groups[0] if len(groups) == 1 else HeadSums.concat(groups)
 
 
-def take(w: torch.Tensor, sl: slice, hs: list[int], shared: bool) -> torch.Tensor:
-    """Batch slice *sl*, heads *hs* of ``(B, H, Tq, Tk)`` weights as float32 memory that no one else holds.
+def take(w: torch.Tensor, sl: slice, hs: list[int], shared: bool = True) -> torch.Tensor:
+    """Batch slice *sl*, heads *hs* of ``(B, H, Tq, Tk)`` weights as float32, copying only what is kept.
 
-    Picking heads by a list copies; all heads of a tensor no one else holds are taken as they are (no copy).
+    The weights of eager paths exist already (the model's softmax output, MHA's per-head weights): when every
+    head is kept and they are float32 and contiguous, the record takes them as they are, with no copy, as
+    ``output_attentions`` hands them out. Picking heads (advanced indexing) or widening half precision copies
+    just the kept part. ``shared`` says whether the model or its caller also holds *w*; such weights are
+    watched for in-place changes until the capture closes (:meth:`Recorder.check_borrowed`).
     """
-    if not shared and hs == list(range(w.shape[1])):
-        part = w[sl]
+    if hs == list(range(w.shape[1])):
+        part = w[sl]  # (b, H, Tq, Tk)  a view
     else:
-        part = w[sl][:, hs]  # advanced indexing: a copy
+        part = w[sl][:, hs]  # (b, h, Tq, Tk)  advanced indexing: a copy of the kept heads only
     return part.float().contiguous()
 
 

@@ -44,6 +44,7 @@ __all__ = ["Capture", "RoutingMode", "attention_routes", "capture", "head_table"
            "hold_fastpath_off", "muted", "record_sums", "release_fastpath", "remove_mode", "tap"]
 
 KEEP_MODES = ("maps", "stats")
+SDPA_MODES = ("beside", "weights")
 DEFAULT_MAX_BYTES = 2 * 1024**3  # 2 GiB of kept maps
 SOFTMAX_FUNCS = set(_SOFTMAX_FUNCS)
 
@@ -129,7 +130,7 @@ class Capture:
     def __init__(self, model: nn.Module, *, keep: str = "maps", layers: Sequence[str | int] | None = None,
                  heads: Iterable[int] | None = None, blocks: Sequence[str] | None = None,
                  kinds: Mapping[str, str] | None = None, max_bytes: int = DEFAULT_MAX_BYTES,
-                 residual: bool = True) -> None:
+                 residual: bool = True, sdpa: str = "beside") -> None:
         if not isinstance(model, nn.Module):
             raise OptionError(f"capture() expects a torch.nn.Module; received {type(model).__name__}")
         if isinstance(model, torch.jit.ScriptModule):
@@ -144,6 +145,8 @@ class Capture:
                 "attnscope.capture(model._orig_mod) and call model._orig_mod(...) inside the block.")
         if keep not in KEEP_MODES:
             raise OptionError(f"keep must be 'maps' or 'stats'; received {keep!r}.{suggest(str(keep), KEEP_MODES)}")
+        if sdpa not in SDPA_MODES:
+            raise OptionError(f"sdpa must be 'beside' or 'weights'; received {sdpa!r}.{suggest(str(sdpa), SDPA_MODES)}")
         if not isinstance(max_bytes, int) or max_bytes <= 0:
             raise OptionError(f"max_bytes must be a positive int; received {max_bytes!r}")
         self.keep = keep
@@ -169,7 +172,7 @@ class Capture:
                 AttnscopeWarning, stacklevel=3)
         self._kinds = self._check_kinds(kinds, all_names)
         self._rec = Recorder(self._map, keep=keep, max_bytes=max_bytes, selected=self._selected,
-                             heads=self._heads, kinds=self._kinds)
+                             heads=self._heads, kinds=self._kinds, sdpa=sdpa)
         self.attention: list[AttentionRecord] = self._rec.attention
         self.residual = self._rec.residual
         self._state = "new"
@@ -296,6 +299,12 @@ class Capture:
 
     def _finish(self) -> None:
         c = self._rec.counters
+        changed = self._rec.check_borrowed()
+        if changed:
+            warnings.warn(f"attention modules {', '.join(changed[:5])} changed their attention weights in place after "
+                          "capture took them (capture keeps the model's own weights without copying them); the "
+                          "records hold the changed values. Capture with heads= (which copies) or make the "
+                          "in-place operation out of place", AttnscopeWarning, stacklevel=3)
         if c.foreign:
             warnings.warn(f"{c.foreign} module calls of the model ran on another thread than the one that "
                           "opened the capture and were not recorded; run the forward on the capturing thread, or "
@@ -422,7 +431,7 @@ def remove_mode(mode: TorchFunctionMode) -> None:
 def capture(model: nn.Module, *, keep: str = "maps", layers: Sequence[str | int] | None = None,
             heads: Iterable[int] | None = None, blocks: Sequence[str] | None = None,
             kinds: Mapping[str, str] | None = None, max_bytes: int = DEFAULT_MAX_BYTES,
-            residual: bool = True) -> Capture:
+            residual: bool = True, sdpa: str = "beside") -> Capture:
     """Capture per-head attention weights and residual-stream norms of *model* inside a ``with`` block.
 
     >>> import torch, attnscope
@@ -446,13 +455,21 @@ def capture(model: nn.Module, *, keep: str = "maps", layers: Sequence[str | int]
         max_bytes: budget for kept maps; going over raises :class:`~attnscope.errors.MemoryBudgetError`
             before the map is built.
         residual: record residual-stream norms of blocks.
+        sdpa: how calls of ``F.scaled_dot_product_attention`` are seen. ``"beside"`` (default): the fused kernel
+            runs untouched, so outputs stay bit-identical, and capture recomputes softmax(QKᵀ·scale + mask) beside
+            it (the model computes attention twice). ``"weights"``: the call's output is computed from the weights
+            capture builds anyway, ``weights @ V`` (attention computed once: no slower than an eager model's
+            ``output_attentions``). Outputs then differ from the fused kernel's by float rounding (the kernel
+            sums in another order; about 1e-7 relative in float32, measured in
+            ``tests/capture/test_sdpa_weights.py``). It applies to calls without attention dropout where no
+            input needs a gradient; other calls run as under ``"beside"``.
 
     Returns:
         A :class:`Capture`: enter it with ``with``; after the block read ``.attention``, ``.residual`` and
         ``.head_table()``.
     """
     return Capture(model, keep=keep, layers=layers, heads=heads, blocks=blocks, kinds=kinds,
-                   max_bytes=max_bytes, residual=residual)
+                   max_bytes=max_bytes, residual=residual, sdpa=sdpa)
 
 
 def tap(weights: torch.Tensor, *, allowed: torch.Tensor | None = None, causal: bool | None = None,

@@ -1,4 +1,5 @@
-"""``F.scaled_dot_product_attention``: left to run unchanged; its weights are recomputed beside it.
+"""``F.scaled_dot_product_attention``: left to run unchanged with its weights recomputed beside it, or (opt-in)
+computed once from the weights.
 
 The fused kernels never form the weights, so :func:`attnscope.capture.masks.sdpa_weights` recomputes
 softmax(Q Kᵀ · scale + mask) from the same query, key, mask and scale (GQA aware), only for the kept heads.
@@ -6,14 +7,19 @@ softmax(Q Kᵀ · scale + mask) from the same query, key, mask and scale (GQA aw
 Grouped-query decode steps packed as ``(B, H_kv, n_rep, E)`` queries (one query per head folded onto the
 key/value heads, as HF transformers does for a single token with a mask) are unpacked to
 ``(B, H_q, 1, E)`` when the owning module declares ``num_key_value_groups`` and its head count.
+
+With ``capture(..., sdpa="weights")`` the call is not run at all: capture builds the weights of every head and
+returns ``weights @ V`` as the call's output (equal to the kernel's up to float rounding), so attention is
+computed once.
 """
 
 from __future__ import annotations
 
+import torch
 import torch.nn.functional as F
 
 from attnscope.capture import masks, rules
-from attnscope.capture.recorder import Recorder, as_4d
+from attnscope.capture.recorder import Recorder, as_4d, take
 
 SOURCE = "sdpa"
 FUNCS = (F.scaled_dot_product_attention,)
@@ -21,12 +27,15 @@ _PARAMS = ("query", "key", "value", "attn_mask", "dropout_p", "is_causal", "scal
 
 
 def on_call(rec: Recorder, func, args, kwargs):
-    out = func(*args, **kwargs)
     frame = rec.frame()
     if frame is None or not frame.selected:
-        return out
+        return func(*args, **kwargs)
     p = dict(zip(_PARAMS, args))
     p.update(kwargs)
+    if (rec.sdpa == "weights" and _from_weights_applies(p)
+            and not _packed_groups(frame.target().module, as_4d(p["query"]), as_4d(p["key"]))):
+        return _from_weights(rec, frame, p)
+    out = func(*args, **kwargs)
     q, k = p["query"], p["key"]
     attn_mask, is_causal = p.get("attn_mask"), bool(p.get("is_causal", False))
     q4, k4, mask4 = as_4d(q), as_4d(k), attn_mask
@@ -54,7 +63,7 @@ def on_call(rec: Recorder, func, args, kwargs):
         return masks.sdpa_weights(q4[sl][:, hs], k4[sl][:, kh], m, is_causal, p.get("scale"))
 
     causal = is_causal or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset))
-    rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute)
+    rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute, builds=True)
     return out
 
 
@@ -72,3 +81,35 @@ def _packed_groups(module, q4, k4) -> int:
 def _unpack(t, groups: int):
     b, hkv, _, e = t.shape
     return t.reshape(b, hkv * groups, 1, e)
+
+
+def _from_weights_applies(p: dict) -> bool:
+    """Whether the call may be computed as ``weights @ V``: no attention dropout, no gradient needed."""
+    tensors = [t for t in (p["query"], p["key"], p["value"], p.get("attn_mask")) if isinstance(t, torch.Tensor)]
+    needs_grad = torch.is_grad_enabled() and any(t.requires_grad for t in tensors)
+    return not needs_grad and not p.get("dropout_p") and p["value"].is_floating_point()
+
+
+def _from_weights(rec: Recorder, frame, p: dict) -> torch.Tensor:
+    """``sdpa="weights"``: build every head's weights once, record them, and return ``weights @ V``."""
+    q, k, v = p["query"], p["key"], p["value"]
+    attn_mask, is_causal = p.get("attn_mask"), bool(p.get("is_causal", False))
+    q4, k4, v4, mask4 = as_4d(q), as_4d(k), as_4d(v), attn_mask
+    if mask4 is not None and q.dim() > 4:
+        mask4 = mask4.reshape(-1, *mask4.shape[-3:]) if mask4.dim() > 4 else mask4
+    b, hq, tq, _ = q4.shape  # (B, Hq, Tq, E)
+    tk = k4.shape[-2]
+    gqa = bool(p.get("enable_gqa", False))
+    w = masks.sdpa_weights(q4, k4, mask4, is_causal, p.get("scale"), enable_gqa=gqa)  # (B, Hq, Tq, Tk) float32
+    vv = v4
+    if gqa and v4.shape[1] != hq:
+        vv = v4.repeat_interleave(hq // v4.shape[1], dim=1)  # (B, Hq, Tk, Ev)
+    out = torch.matmul(w.to(v.dtype), vv)  # (B, Hq, Tq, Ev)
+    kind = frame.kind()
+    offset = 0 if (is_causal or kind == "cross") else max(tk - tq, 0)
+    allowed = masks.compact(masks.sdpa_allowed(mask4, is_causal, tq, tk), (b, hq, tq, tk))
+    heads = rec.kept_heads(hq, frame.target().name)
+    causal = is_causal or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset))
+    rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset,
+               lambda sl, hs: take(w, sl, hs))  # capture's own tensor: kept without a copy
+    return out.reshape(*q.shape[:-1], v.shape[-1])

@@ -43,7 +43,7 @@ def on_call(rec: Recorder, func, args, kwargs):
         scores = scores.reshape(bh // h, h, tq, tk)
         w = w.reshape(bh // h, h, tq, tk)  # a view: the model's own tensor, never written
     b, h, tq, tk = w.shape  # (B, H, Tq, Tk)
-    allowed = masks.compact(~(scores <= masks.FORBID_AT), (b, h, tq, tk))
+    allowed = masks.allowed_from_scores(scores)  # (B or 1, H or 1, Tq, Tk) bool, or None
     kind = frame.kind()
     offset = 0 if kind == "cross" else max(tk - tq, 0)
     heads = rec.kept_heads(h, target.name)

@@ -1,0 +1,191 @@
+"""What makes capture cheap stays exact: statistics in cache-sized pieces, eager weights kept without a copy, and
+the opt-in ``sdpa="weights"`` (output computed from the weights capture builds) against the plain model."""
+
+from __future__ import annotations
+
+import importlib
+import math
+
+import numpy as np
+import pytest
+import torch
+import torch.nn.functional as F
+from scipy.special import entr
+from torch import nn
+
+import attnscope
+import attnscope.stats
+from attnscope.errors import AttnscopeWarning, OptionError
+from attnscope.stats import head_sums
+
+
+def brute_means(w: np.ndarray, allowed: np.ndarray | None, offset: int = 0) -> dict[str, np.ndarray]:
+    """Per-head statistics row by row in float64 numpy and scipy (independent of attnscope.stats)."""
+    b, h, tq, tk = w.shape
+    out = {k: np.zeros(h) for k in ("entropy", "max_weight", "sink_mass", "mean_distance", "leak_mass")}
+    rows = np.zeros(h)
+    for hi in range(h):
+        for bi in range(b):
+            for i in range(tq):
+                row = w[bi, hi, i].astype(np.float64)
+                ok = np.ones(tk, bool) if allowed is None else np.broadcast_to(allowed, w.shape)[bi, hi, i]
+                if not ok.any() or not np.isfinite(row).all():
+                    continue
+                rows[hi] += 1
+                out["entropy"][hi] += entr(row).sum()  # scipy's -x ln x (no normalisation: a leaky row may not sum to 1)
+                out["max_weight"][hi] += row.max()
+                out["sink_mass"][hi] += row[np.argmax(ok)]
+                out["mean_distance"][hi] += (row * np.abs(i + offset - np.arange(tk))).sum()  # brute force
+                out["leak_mass"][hi] += row[~ok].sum()
+    return {k: v / rows for k, v in out.items()}
+
+
+@pytest.mark.parametrize("dtype", [torch.float32, torch.bfloat16])
+def test_statistics_in_pieces_equal_brute_force_on_kept_maps(monkeypatch, dtype):
+    monkeypatch.setattr(attnscope.stats, "PIECE_BYTES", 300)  # force many pieces, some of one row
+    torch.manual_seed(0)
+    b, h, tq, tk = 2, 3, 7, 10
+    allowed = torch.ones(tq, tk, dtype=torch.bool).tril(diagonal=3)  # (Tq, Tk)
+    allowed[4, :2] = False  # sink moves for one row
+    scores = torch.randn(b, h, tq, tk) * 3
+    w = scores.masked_fill(~allowed, float("-inf")).softmax(-1)
+    w[0, 1, 2, 5] = 0.01  # a leak past the mask
+    w[1, 2, 3, 0] = float("nan")  # a non-finite row is left out
+    w = w.to(dtype)
+    means = head_sums(w, allowed[None, None], 3).means()
+    expect = brute_means(w.float().numpy(), allowed.numpy(), 3)
+    for k, v in expect.items():
+        np.testing.assert_allclose(means[k], v, rtol=1e-6, atol=1e-6, err_msg=k)
+
+
+def gpt2(attn: str):
+    import transformers
+
+    cfg = transformers.GPT2Config(n_layer=2, n_head=4, n_embd=32, n_positions=64, vocab_size=50, bos_token_id=0,
+                                  eos_token_id=0, resid_pdrop=0.0, embd_pdrop=0.0, attn_pdrop=0.0)
+    torch.manual_seed(0)
+    return transformers.GPT2Model._from_config(cfg, attn_implementation=attn).eval()
+
+
+def test_stats_mode_equals_statistics_of_kept_maps_to_1e_6():
+    model = gpt2("eager")
+    ids = torch.randint(0, 50, (3, 40))
+    with torch.no_grad(), attnscope.capture(model, keep="maps") as maps:
+        model(ids)
+    with torch.no_grad(), attnscope.capture(model, keep="stats") as stats:
+        model(ids)
+    for rec, srec in zip(maps.attention, stats.attention):
+        expect = brute_means(rec.weights, rec.allowed, rec.query_offset)  # from the kept maps, brute force
+        got = srec.stats.means()
+        for k, v in expect.items():
+            np.testing.assert_allclose(got[k], v, rtol=1e-6, atol=1e-6, err_msg=k)
+
+
+def test_eager_weights_are_kept_without_a_copy_and_equal_output_attentions():
+    model = gpt2("eager")
+    ids = torch.randint(0, 50, (2, 12))
+    with torch.no_grad(), attnscope.capture(model) as cap:
+        out = model(ids, output_attentions=True)
+    for rec, theirs in zip(cap.attention, out.attentions):
+        assert np.array_equal(rec.weights, theirs.numpy())  # HF eager output_attentions
+        assert np.shares_memory(rec.weights, theirs.numpy())  # the model's own tensor: no copy
+    with torch.no_grad(), attnscope.capture(model, heads=[1, 3]) as some:
+        out = model(ids, output_attentions=True)
+    assert not np.shares_memory(some.attention[0].weights, out.attentions[0].numpy())  # only kept heads copied
+    assert np.array_equal(some.attention[0].weights, out.attentions[0][:, [1, 3]].numpy())
+
+
+class InPlaceAfterSoftmax(nn.Module):
+    """A hand-written attention that scales its weights in place after the softmax (what capture must notice)."""
+
+    def forward(self, x):  # (B, T, D)
+        att = (x @ x.transpose(-2, -1)).unsqueeze(1).softmax(dim=-1)  # (B, 1, T, T)
+        att.mul_(0.5)
+        return (att @ x.unsqueeze(1)).squeeze(1)
+
+
+def test_weights_changed_in_place_after_capture_took_them_warn():
+    model = InPlaceAfterSoftmax()
+    with pytest.warns(AttnscopeWarning, match="changed their attention weights in place"):
+        with torch.no_grad(), attnscope.capture(model, residual=False) as cap:
+            model(torch.randn(1, 4, 8))
+    assert cap.attention[0].weights.sum(-1).max() == pytest.approx(0.5)  # the records say what happened
+
+
+def test_sdpa_weights_mode_output_differs_from_the_plain_model_by_float_rounding_only():
+    model = gpt2("sdpa")
+    ids = torch.randint(0, 50, (3, 40))
+    with torch.no_grad():
+        plain = model(ids).last_hidden_state
+        with attnscope.capture(model) as beside:
+            same = model(ids).last_hidden_state
+        with attnscope.capture(model, sdpa="weights") as once:
+            got = model(ids).last_hidden_state
+        eager = gpt2("eager")
+        theirs = eager(ids, output_attentions=True).attentions
+    assert torch.equal(same, plain)  # the default leaves the fused kernel untouched
+    diff = (got - plain).abs().max().item()
+    scale = plain.abs().max().item()
+    # measured on torch 2.13 CPU: about 1e-6 absolute on activations of size ~5 (float32 rounding of another
+    # summation order); far below any difference a model's decision would notice
+    assert diff / scale < 1e-5
+    for a, b, ref in zip(beside.attention, once.attention, theirs):
+        np.testing.assert_allclose(b.weights, ref.numpy(), atol=1e-5)  # HF eager output_attentions
+        np.testing.assert_allclose(b.weights, a.weights, atol=1e-5)
+
+
+def test_sdpa_weights_mode_with_gqa_and_a_padding_mask_against_math():
+    torch.manual_seed(0)
+    q, k, v = torch.randn(2, 4, 5, 8), torch.randn(2, 2, 7, 8), torch.randn(2, 2, 7, 6)
+    mask = torch.ones(2, 1, 5, 7, dtype=torch.bool)
+    mask[1, :, :, 5:] = False
+
+    class Block(nn.Module):
+        def forward(self, q, k, v):
+            return F.scaled_dot_product_attention(q, k, v, attn_mask=mask, enable_gqa=True)
+
+    block = Block()
+    with attnscope.capture(block, sdpa="weights", layers=[""], residual=False) as cap:
+        got = block(q, k, v)
+    kk, vv = k.repeat_interleave(2, 1), v.repeat_interleave(2, 1)
+    scores = (q @ kk.transpose(-2, -1) / math.sqrt(8)).masked_fill(~mask, float("-inf"))  # independent softmax
+    w = scores.softmax(-1)
+    torch.testing.assert_close(got, w @ vv, rtol=1e-5, atol=1e-6)
+    torch.testing.assert_close(got, F.scaled_dot_product_attention(q, k, v, attn_mask=mask, enable_gqa=True),
+                               rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(cap.attention[0].weights, w.numpy(), atol=1e-6)
+
+
+def test_sdpa_weights_mode_leaves_calls_that_need_gradients_untouched():
+    model = gpt2("sdpa")
+    ids = torch.randint(0, 50, (1, 9))
+    plain = model(ids).last_hidden_state
+    with attnscope.capture(model, sdpa="weights") as cap:
+        got = model(ids).last_hidden_state
+    assert torch.equal(got, plain) and got.requires_grad
+    assert len(cap.attention) == 2
+
+
+def test_sdpa_option_fails_at_the_door():
+    with pytest.raises(OptionError, match="'beside' or 'weights'"):
+        attnscope.capture(gpt2("sdpa"), sdpa="weight")
+
+
+def test_recomputed_maps_built_in_pieces_equal_an_independent_softmax(monkeypatch):
+    recorder = importlib.import_module("attnscope.capture.recorder")
+
+    monkeypatch.setattr(recorder, "_STATS_CHUNK_BYTES", 2 * 4 * 6 * 6 * 4)  # two batch items per piece
+    torch.manual_seed(0)
+    q, k, v = torch.randn(5, 4, 6, 8), torch.randn(5, 4, 6, 8), torch.randn(5, 4, 6, 8)
+
+    class Block(nn.Module):
+        def forward(self, q, k, v):
+            return F.scaled_dot_product_attention(q, k, v, is_causal=True)
+
+    block = Block()
+    with attnscope.capture(block, layers=[""], residual=False) as cap:
+        out = block(q, k, v)
+    causal = torch.ones(6, 6, dtype=torch.bool).tril()
+    w = (q @ k.transpose(-2, -1) / math.sqrt(8)).masked_fill(~causal, float("-inf")).softmax(-1)  # independent
+    np.testing.assert_allclose(cap.attention[0].weights, w.numpy(), atol=1e-6)
+    assert torch.equal(out, F.scaled_dot_product_attention(q, k, v, is_causal=True))  # untouched by default
