@@ -116,12 +116,17 @@ def _pool(records: Sequence[AttentionRecord]) -> dict[str, _Pool]:
         pool.sums = pool.sums.merge(sums)
         if rec.weights is None:
             continue
-        w = np.nan_to_num(rec.weights.astype(np.float64), nan=0.0, posinf=0.0)  # (B, H, Tq, Tk)
-        allowed = rec.allowed_full()  # (B, H, Tq, Tk)
-        rows = (allowed.sum(axis=-1) >= 2) & np.isfinite(rec.weights).all(axis=-1)  # (B, H, Tq)
-        first_key = allowed.argmax(axis=-1)[..., None]  # (B, H, Tq, 1)
-        first = (np.take_along_axis(w, first_key, axis=-1)[..., 0] * rows).sum(axis=(0, 2))  # (H,)
-        fixed = (w * rows[..., None]).sum(axis=(0, 2))  # (H, Tk)
+        w = rec.weights  # (B, H, Tq, Tk) float32, read in place
+        total = w.sum(axis=-1)  # (B, H, Tq): finite exactly when every weight of the row is
+        finite = np.isfinite(total)
+        if not finite.all():
+            w = np.nan_to_num(w, nan=0.0, posinf=0.0, neginf=0.0)  # rare: a copy only for broken maps
+        b, h, tq, tk = w.shape
+        allowed = np.ones((1, 1, tq, tk), bool) if rec.allowed is None else rec.allowed  # broadcastable
+        rows = (allowed.sum(axis=-1) >= 2) & finite  # (B, H, Tq)
+        first_key = np.broadcast_to(allowed.argmax(axis=-1)[..., None], (b, h, tq, 1))  # (B, H, Tq, 1)
+        first = (np.take_along_axis(w, first_key, axis=-1)[..., 0] * rows).sum(axis=(0, 2), dtype=np.float64)
+        fixed = np.einsum("bhqk,bhq->hk", w, rows.astype(np.float32), optimize=True).astype(np.float64)  # (H, Tk)
         if pool.fixed is None:
             pool.rows2, pool.first, pool.fixed = np.zeros(len(rec.heads)), np.zeros(len(rec.heads)), fixed
         else:

@@ -125,6 +125,18 @@ def _short(s: str, n: int = 28) -> str:
     return s if len(s) <= n else "\u2026" + s[-(n - 1):]
 
 
+def _axis_lengths(records: list, blocks: list) -> dict[int, str]:
+    """Full length of every axis of a capture -> the first place it occurs, for token-length messages."""
+    out: dict[int, str] = {}
+    for rec in records:
+        _, _, tq, tk = rec.shape
+        out.setdefault(int(tk), f"keys of '{rec.name}'")
+        out.setdefault(int(rec.query_offset + tq), f"queries of '{rec.name}'")
+    for block in blocks:
+        out.setdefault(int(block.norms.shape[-1]), f"positions of block '{block.name}'")
+    return out
+
+
 class Scene:
     """All figures and data sources of the dashboard, and the methods that point them at a head.
 
@@ -150,6 +162,7 @@ class Scene:
         self.table = cap.head_table()
         names = [r.name for r in self.records] + [b.name for b in self.blocks]
         self.labels = tokens if isinstance(tokens, TokenLabels) else TokenLabels(tokens, ids=ids, names=names)
+        self.labels.check_lengths(_axis_lengths(self.records, self.blocks))
         self.heads: list[HeadRef] = []
         rec_labels = _record_labels(self.records)
         for r, rec in enumerate(self.records):
