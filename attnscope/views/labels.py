@@ -118,8 +118,8 @@ class TokenLabels:
             given += [(f"tokens[{k!r}]", _per_item(p, f"tokens[{k!r}]")) for p in parts
                       if not (isinstance(p, str) and p in ROLES)]
         expected = "; ".join(f"{n} ({d})" for n, d in sorted(axes.items()))
-        for what, seq in given:
-            for s in (seq if seq and isinstance(seq[0], list) else [seq]):
+        for what, value in given:
+            for s in (value if value and isinstance(value[0], list) else [value]):
                 if len(s) not in axes:
                     raise ShapeError(f"{what}: a sequence of {len(s)} strings fits no axis of the capture; "
                                      f"expected {expected}")
