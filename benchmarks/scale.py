@@ -81,6 +81,7 @@ def main(argv: list[str] | None = None) -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--repeats", type=int, default=2)
     ap.add_argument("--seq", type=int, default=1024)
+    ap.add_argument("--skip", nargs="*", default=[], help="steps to leave out, e.g. check_causal")
     args = ap.parse_args(argv)
     model, ids = build(args.seq)
     out_dir = Path(tempfile.mkdtemp())
@@ -109,6 +110,7 @@ def main(argv: list[str] | None = None) -> None:
         "export_html": lambda: attnscope.export_html(cap, page),
         "check_causal (screen)": lambda: attnscope.check_causal(lambda x: model(x).logits, ids),
     }
+    steps = {k: v for k, v in steps.items() if not any(k.startswith(x) for x in args.skip)}
     times: dict[str, list[float]] = {k: [] for k in steps}
     peaks: dict[str, int] = {}
     for r in range(args.repeats):
@@ -130,25 +132,30 @@ def main(argv: list[str] | None = None) -> None:
     fwd = med["plain forward"]
     mib = 2 ** 20
     size = os.path.getsize(page)
-    targets = {
-        "duplicate_heads": (med["duplicate_heads"] <= 5 and peaks["duplicate_heads"] <= 300 * mib, "<= 5 s, +300 MB"),
-        "head_distances": (med["head_distances"] <= 5 and peaks["head_distances"] <= 300 * mib, "<= 5 s, +300 MB"),
-        "dead_heads": (med["dead_heads"] <= 1, "<= 1 s"),
-        "head_table": (med["head_table"] <= 2, "<= 2 s"),
-        "dashboard(cap)": (med["dashboard(cap)"] <= 3, "<= 3 s"),
-        "export_html": (med["export_html"] <= 3 and size <= 20 * 10 ** 6, "<= 3 s, <= 20 MB"),
-        "capture keep='maps'": (peaks["capture keep='maps'"] <= 1.2 * kept, "peak <= 1.2x kept"),
-        "check_causal (screen)": (med["check_causal (screen)"] <= 20 * fwd, "<= 20 forwards"),
-    }
+    # (seconds, forwards): the issue's targets in seconds, and as multiples of the forward the issue measured
+    # (about 2 s: "<= 5 s (about 2-3 forwards)"), which stay meaningful when neighbours slow the machine down
+    goals = {"duplicate_heads": (5, 2.5), "head_distances": (5, 2.5), "dead_heads": (1, 0.5), "head_table": (2, 1.0),
+             "dashboard(cap)": (3, 1.5), "export_html": (3, 1.5), "check_causal (screen)": (None, 20.0)}
+    memory = {"duplicate_heads": 300 * mib, "head_distances": 300 * mib}
     print(f"GPT-2-small shape (12 x 12 heads, d=768), eager, one sequence, T={args.seq}, {args.repeats} rounds "
           f"(medians), torch threads {torch.get_num_threads()}")
-    print(f"{'step':<42} {'s':>7} {'x fwd':>7} {'peak RSS +':>11}  target")
+    print(f"{'step':<42} {'s':>7} {'x fwd':>7} {'peak RSS +':>11}  target: seconds / forwards / memory")
     for name in steps:
-        ok, text = targets.get(name, (None, ""))
-        verdict = "" if ok is None else (" met" if ok else " NOT met")
-        print(f"{name:<42} {med[name]:7.2f} {med[name] / fwd:7.1f} {peaks[name] / mib:8.0f} MiB  {text}{verdict}")
-    print(f"kept maps: {kept / mib:.0f} MiB; capture peak extra / kept = {peaks[CAPTURE] / kept:.2f}; "
-          f"export_html file {size / 10 ** 6:.1f} MB")
+        sec, fw = goals.get(name, (None, None))
+        parts = []
+        if sec is not None:
+            parts.append(f"<= {sec} s {'met' if med[name] <= sec else 'NOT met'}")
+        if fw is not None:
+            parts.append(f"<= {fw:g} fwd {'met' if med[name] <= fw * fwd else 'NOT met'}")
+        if name in memory:
+            parts.append(f"+{memory[name] // mib} MiB {'met' if peaks[name] <= memory[name] else 'NOT met'}")
+        if name == "export_html":
+            parts.append(f"{size / 10 ** 6:.1f} MB <= 20 MB {'met' if size <= 20 * 10 ** 6 else 'NOT met'}")
+        if name == CAPTURE:
+            parts.append(f"peak {peaks[name] / kept:.2f}x kept <= 1.2x {'met' if peaks[name] <= 1.2 * kept else 'NOT met'}")
+        print(f"{name:<42} {med[name]:7.2f} {med[name] / fwd:7.1f} {peaks[name] / mib:8.0f} MiB  {'; '.join(parts)}")
+    print(f"kept maps: {kept / mib:.0f} MiB. The floor row is what any comparison of every head pair on every row "
+          "costs at least.")
     print("dashboard(cap): building the widget in Python; the browser's first render is checked in tests/views.")
 
 

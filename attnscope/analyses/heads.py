@@ -42,7 +42,7 @@ import torch
 from torch import nn
 
 from attnscope.analyses.ablation import AttentionCall, observe_heads
-from attnscope.analyses.similarity import close_pairs, distance_bounds, head_distances
+from attnscope.analyses.similarity import _exact_matrix, distance_bounds, head_distances
 from attnscope.capture import record_sums
 from attnscope.errors import OptionError, ShapeError, UnsupportedModelError, suggest
 from attnscope.names import name_matches
@@ -415,7 +415,7 @@ def duplicate_heads(cap: Any, *, max_distance: float = 0.1, item: int | None = N
     low = _pool_columns(distance_bounds(records, item)[0].to_numpy(), key, occ, len(labels))  # (n, n)
     near = low <= max_distance + 1e-9  # the bound is rounded down already; 1e-9 covers the pooling sums
     below = near[key[:, None], key[None, :]] & (occ[:, None] == occ[None, :])  # (N, N) columns to compute
-    mean = _pool_columns(close_pairs(records, item, below)[1], key, occ, len(labels))
+    mean = _pool_columns(_exact_matrix(records, item, below)[1], key, occ, len(labels))
     pairs = [HeadPair(labels[a][0], labels[a][1], labels[b][0], labels[b][1], float(mean[a, b]))
              for a in range(len(labels)) for b in range(a + 1, len(labels))
              if np.isfinite(mean[a, b]) and mean[a, b] <= max_distance]
@@ -489,8 +489,8 @@ def head_clusters(cap: Any, *, method: str = "average", item: int | None = None,
             ``"single"`` or ``"weighted"`` (methods that need Euclidean points are not offered).
         item: use one batch item only.
         exact: cluster on exact distances; by default on the estimate of
-            :func:`~attnscope.analyses.similarity.head_distances` (exact up to 128 rows per map, else within
-            0.025 of it with 95 % probability per pair), which keeps 144 heads at T=1024 to seconds.
+            :func:`~attnscope.analyses.similarity.head_distances` (exact up to 64 rows per map, else within
+            0.035 of it with 95 % probability per pair), which keeps 144 heads at T=1024 to seconds.
 
     Returns:
         A :class:`HeadClusters`.

@@ -182,7 +182,7 @@ def distance_bounds(cap: Any, item: int | None = None) -> tuple[pd.DataFrame, pd
     return _frame(labels, low), _frame(labels, high)
 
 
-def close_pairs(cap: Any, item: int | None, below: np.ndarray | None = None) -> tuple[list, np.ndarray]:
+def _exact_matrix(cap: Any, item: int | None, below: np.ndarray | None = None) -> tuple[list, np.ndarray]:
     """Column labels and a matrix with the exact distance where *below* holds (NaN elsewhere); internal."""
     labels, groups = _groups(_records(cap), item)
     out = np.full((len(labels), len(labels)), np.nan)
@@ -202,7 +202,7 @@ def close_pairs(cap: Any, item: int | None, below: np.ndarray | None = None) -> 
     return labels, out
 
 
-def head_distances(cap: Any, item: int | None = None, *, exact: bool = False, sample: int = 128,
+def head_distances(cap: Any, item: int | None = None, *, exact: bool = False, sample: int = 64,
                    confidence: float = 0.95, seed: int = 0) -> pd.DataFrame:
     """Jensen–Shannon distance between every pair of kept heads whose maps have the same shape.
 
@@ -229,7 +229,8 @@ def head_distances(cap: Any, item: int | None = None, *, exact: bool = False, sa
     Hoeffding's inequality (W. Hoeffding, "Probability inequalities for sums of bounded random variables",
     JASA 58, 1963, whose bounds hold for sampling without replacement too) the error is at most
     ``0.2011 · max_r h_r · √(ln(2/(1 − confidence)) / (2·sample)) ≤ 0.2011 · √(ln(2/(1 − confidence)) /
-    (2·sample))`` with probability *confidence*: below 0.025 for 128 rows at 95 %, whatever the sequence length. The estimate is kept within the two bounds.
+    (2·sample))`` with probability *confidence*: below 0.035 for 64 rows at 95 %, whatever the sequence length.
+    The estimate is kept within the two bounds.
     The largest such bound over all pairs is in ``frame.attrs["error_bound"]`` (0 when exact).
     :func:`~attnscope.analyses.heads.duplicate_heads` never uses the estimate.
 
@@ -245,7 +246,7 @@ def head_distances(cap: Any, item: int | None = None, *, exact: bool = False, sa
     recs = _records(cap)
     labels, groups = _groups(recs, item)
     if exact or all(g.batch * g.tq <= sample for g in groups):
-        frame = _frame(*close_pairs(recs, item))
+        frame = _frame(*_exact_matrix(recs, item))
         frame.attrs["error_bound"] = 0.0
         return frame
     out = np.full((len(labels), len(labels)), np.nan)
