@@ -14,8 +14,9 @@ The ``tokens=`` argument of :func:`attnscope.dashboard` and :func:`attnscope.exp
 * a tokenizer-like callable with ``ids=`` given: ``tokens(list_of_ids) -> list of str`` (an object with
   ``convert_ids_to_tokens`` is called through that method), applied to each batch item of ``ids`` ``(B, T)``.
 
-Every sequence given must be as long as some axis of the capture (the keys of a record, its queries counted
-from position 0, or a residual block's positions), or :meth:`TokenLabels.check_lengths` raises a ShapeError
+A sequence given for every item must be as long as some axis of the capture (the keys of a record, its queries
+counted from position 0, or a residual block's positions), and one given per item no longer than the longest
+(a shorter one is a padded item), or :meth:`TokenLabels.check_lengths` raises a ShapeError
 naming the lengths expected: labels of the wrong length would put the wrong token under a weight. A sequence
 longer than an axis of another record is cut to that axis (a query axis from ``query_offset`` on, for a step
 with a key/value cache); a missing name is shown as its position. Labels are user data: the views escape them.
@@ -118,11 +119,16 @@ class TokenLabels:
             given += [(f"tokens[{k!r}]", _per_item(p, f"tokens[{k!r}]")) for p in parts
                       if not (isinstance(p, str) and p in ROLES)]
         expected = "; ".join(f"{n} ({d})" for n, d in sorted(axes.items()))
+        longest = max(axes, default=0)
         for what, value in given:
-            for s in (value if value and isinstance(value[0], list) else [value]):
-                if len(s) not in axes:
-                    raise ShapeError(f"{what}: a sequence of {len(s)} strings fits no axis of the capture; "
-                                     f"expected {expected}")
+            if value and isinstance(value[0], list):  # one per batch item: shorter ones are padded items
+                for i, s in enumerate(value):
+                    if len(s) > longest:
+                        raise ShapeError(f"{what}[{i}]: a sequence of {len(s)} strings is longer than every axis of "
+                                         f"the capture; expected at most {longest}: {expected}")
+            elif len(value) not in axes:
+                raise ShapeError(f"{what}: a sequence of {len(value)} strings fits no axis of the capture; "
+                                 f"expected {expected}")
 
     @staticmethod
     def _from_ids(to_str: Callable[[list[int]], Sequence[str]], ids: Any) -> list[list[str]]:

@@ -87,4 +87,9 @@ def test_token_labels_of_the_wrong_length_raise_and_write_nothing(tmp_path, coun
         attnscope.dashboard(cap, tokens=tokens)
     with pytest.raises(ShapeError, match=rf"{count} strings"):
         attnscope.dashboard(cap, tokens={"source": tokens})
+    if count > 6:  # one list per batch item may be shorter (a padded item), never longer than every axis
+        with pytest.raises(ShapeError, match=r"tokens\[0\]: a sequence of 8 strings is longer.*at most 6"):
+            attnscope.dashboard(cap, tokens=[tokens])
+    else:
+        assert attnscope.dashboard(cap, tokens=[tokens]).scene.lens_arrays(0, 0)["k"] == [*tokens, "5"]
     assert attnscope.export_html(cap, path, tokens=tokens[:6] + ["x"] * (6 - count)).exists()  # right length: fine
