@@ -294,10 +294,12 @@ def test_exported_page_at_144_heads_and_1024_positions(playwright, tmp_path, tmp
         page.goto(path.as_uri())
         page.locator("canvas").first.wait_for(state="visible", timeout=60_000)
         page.wait_for_function(f"() => ({SMALL_STATE_JS})()?.idle === true", timeout=60_000)
+        ARTIFACTS.mkdir(exist_ok=True)
+        page.screenshot(path=str(ARTIFACTS / "page_144_heads.png"), full_page=True)
         assert page.evaluate(COLOURS_JS, ["as-twins"]) > 10 and page.evaluate(COLOURS_JS, ["as-atlas"]) > 10
         # a tap on row 40 of the clustered twins matrix selects the head drawn there
         axis = page.evaluate("""() => { for (const d of Bokeh.documents) { const f = d.get_model_by_name('as-twins');
-          if (f) return [f.xaxis[0].ticker.ticks.length, f.yaxis[0].axis_label]; } return null; }""")
+          if (f) return [f.below[0].ticker.ticks.length, f.left[0].axis_label]; } return null; }""")
         assert axis == [36, "head (layer.head)"]  # 144 heads, every 4th labelled on the axis
         x, y = page.evaluate(SCREEN_JS, ["as-twins", 10.5, 40.5])
         page.mouse.click(x, y)
