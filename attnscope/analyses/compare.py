@@ -79,7 +79,7 @@ def compare_captures(before: Any, after: Any, *, item: int | None = None) -> pd.
         h = len(ra.heads)
         js = np.full(h, np.nan)
         if ra.weights is not None and rb.weights is not None:
-            both = head_distances([ra, rb], item=item).to_numpy()  # (2H, 2H): before's heads, then after's
+            both = head_distances([ra, rb], item=item, exact=True).to_numpy()  # (2H, 2H): before's heads, then after's
             js = np.diag(both[:h, h:]).copy()
         for i, head in enumerate(ra.heads):
             rows.append({"name": ra.name, "call_before": ra.call, "call_after": rb.call, "kind": ra.kind,

@@ -14,8 +14,12 @@ The ``tokens=`` argument of :func:`attnscope.dashboard` and :func:`attnscope.exp
 * a tokenizer-like callable with ``ids=`` given: ``tokens(list_of_ids) -> list of str`` (an object with
   ``convert_ids_to_tokens`` is called through that method), applied to each batch item of ``ids`` ``(B, T)``.
 
-A sequence longer than an axis is cut to the axis (a query axis from ``query_offset`` on, for a step with a
-key/value cache); a missing name is shown as its position. Labels are user data: the views escape them.
+A sequence given for every item must be as long as some axis of the capture (the keys of a record, its queries
+counted from position 0, or a residual block's positions), and one given per item no longer than the longest
+(a shorter one is a padded item), or :meth:`TokenLabels.check_lengths` raises a ShapeError
+naming the lengths expected: labels of the wrong length would put the wrong token under a weight. A sequence
+longer than an axis of another record is cut to that axis (a query axis from ``query_offset`` on, for a step
+with a key/value cache); a missing name is shown as its position. Labels are user data: the views escape them.
 
 >>> lab = TokenLabels(["<s>", "a", "b"])
 >>> lab.axis(None, 3, item=0)
@@ -97,6 +101,34 @@ class TokenLabels:
         if ids is None:
             raise OptionError("tokens: a tokenizer-like callable needs the token ids too: pass ids=<(B, T) ids>")
         self._one = self._from_ids(to_str, ids)
+
+    def check_lengths(self, axes: Mapping[int, str]) -> None:
+        """Raise a ShapeError unless every given sequence is as long as one of *axes* (length -> description).
+
+        >>> TokenLabels(["a", "b"]).check_lengths({3: "keys of 'attn'"})
+        Traceback (most recent call last):
+        ...
+        attnscope.errors.ShapeError: tokens: a sequence of 2 strings fits no axis of the capture; expected 3 (keys of 'attn')
+        """
+        given: list[tuple[str, Any]] = []
+        if self._one is not None:
+            given.append(("tokens", self._one))
+        given += [(f"tokens[{k!r}]", v) for k, v in self._roles.items()]
+        for k, v in self._named.items():
+            parts = v if isinstance(v, tuple) and len(v) == 2 else (v,)
+            given += [(f"tokens[{k!r}]", _per_item(p, f"tokens[{k!r}]")) for p in parts
+                      if not (isinstance(p, str) and p in ROLES)]
+        expected = "; ".join(f"{n} ({d})" for n, d in sorted(axes.items()))
+        longest = max(axes, default=0)
+        for what, value in given:
+            if value and isinstance(value[0], list):  # one per batch item: shorter ones are padded items
+                for i, s in enumerate(value):
+                    if len(s) > longest:
+                        raise ShapeError(f"{what}[{i}]: a sequence of {len(s)} strings is longer than every axis of "
+                                         f"the capture; expected at most {longest}: {expected}")
+            elif len(value) not in axes:
+                raise ShapeError(f"{what}: a sequence of {len(value)} strings fits no axis of the capture; "
+                                 f"expected {expected}")
 
     @staticmethod
     def _from_ids(to_str: Callable[[list[int]], Sequence[str]], ids: Any) -> list[list[str]]:

@@ -61,7 +61,7 @@ function show(g, item) {
   pick.data = {x: [cells.data.x[g]], y: [cells.data.y[g]]};
   const M = marks.data;
   stream_pick.data = M.sw[g] > 0 ? {x: [M.sx[g]], y: [M.sy[g]], w: [M.sw[g]]} : {x: [], y: [], w: []};
-  twin_pick.data = has_twins ? {x: [G / 2, g + 0.5], y: [g + 0.5, G / 2], w: [G, 1], h: [1, G]}
+  twin_pick.data = has_twins ? {x: [G / 2, twin_pos[g] + 0.5], y: [twin_pos[g] + 0.5, G / 2], w: [G, 1], h: [1, G]}
                              : {x: [], y: [], w: [], h: []};
   if (cells.selected.indices.length !== 1 || cells.selected.indices[0] !== g) cells.selected.indices = [g];
   if (head_select.value !== String(g)) head_select.value = String(g);
@@ -199,6 +199,7 @@ def export_html(cap: Any, path: str | os.PathLike, tokens: Any = None, *, ids: A
     args = dict(cells=scene.cells_src, lens=scene.lens_src, qlab=scene.qlab_src,
                 klab=scene.klab_src, mapper=scene.lens_mapper, lens_fig=scene.lens_fig, pick=scene.pick_src,
                 stream_pick=scene.stream_pick_src, twin_pick=scene.twin_pick_src, has_twins=scene.distances is not None,
+                twin_pos=scene.twin_pos, twin_order=scene.twin_order,
                 head_select=head_select, item_select=item_select, atlas=scene.atlas_src, stream=scene.stream_src,
                 stream_mapper=scene.stream_mapper, R=len(scene.records), **v)
     on_tap = CustomJS(args=args, code=_SELECT_JS + """
@@ -207,8 +208,8 @@ if (picked.length > 0) show(picked[picked.length - 1], Number(item_select.value)
 else cells.selected.indices = [Number(head_select.value)];""")
     scene.cells_src.selected.js_on_change("indices", on_tap)
     scene.twins_fig.js_on_event("tap", CustomJS(args=args, code=_SELECT_JS + """
-const g = Math.floor(cb_obj.y);
-if (has_twins && g >= 0 && g < cells.data.g.length) show(g, Number(item_select.value));"""))
+const at = Math.floor(cb_obj.y);
+if (has_twins && at >= 0 && at < cells.data.g.length) show(twin_order[at], Number(item_select.value));"""))
     head_select.js_on_change("value", CustomJS(args=args, code=_SELECT_JS + """
 show(Number(head_select.value), Number(item_select.value));"""))
     item_select.js_on_change("value", CustomJS(args=args, code=_SELECT_JS + """

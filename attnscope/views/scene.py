@@ -125,6 +125,32 @@ def _short(s: str, n: int = 28) -> str:
     return s if len(s) <= n else "\u2026" + s[-(n - 1):]
 
 
+def _cluster_order(dist: np.ndarray) -> list[int]:
+    """Leaf order of an average-linkage clustering of the heads (unknown distances count as 1, the largest)."""
+    n = len(dist)
+    if n < 3:
+        return list(range(n))
+    from scipy.cluster.hierarchy import leaves_list, linkage
+    from scipy.spatial.distance import squareform
+
+    d = np.where(np.isfinite(dist), dist, 1.0).astype(np.float64)
+    d = 0.5 * (d + d.T)
+    np.fill_diagonal(d, 0.0)
+    return [int(i) for i in leaves_list(linkage(squareform(d, checks=False), method="average"))]
+
+
+def _axis_lengths(records: list, blocks: list) -> dict[int, str]:
+    """Full length of every axis of a capture -> the first place it occurs, for token-length messages."""
+    out: dict[int, str] = {}
+    for rec in records:
+        _, _, tq, tk = rec.shape
+        out.setdefault(int(tk), f"keys of '{rec.name}'")
+        out.setdefault(int(rec.query_offset + tq), f"queries of '{rec.name}'")
+    for block in blocks:
+        out.setdefault(int(block.norms.shape[-1]), f"positions of block '{block.name}'")
+    return out
+
+
 class Scene:
     """All figures and data sources of the dashboard, and the methods that point them at a head.
 
@@ -150,6 +176,7 @@ class Scene:
         self.table = cap.head_table()
         names = [r.name for r in self.records] + [b.name for b in self.blocks]
         self.labels = tokens if isinstance(tokens, TokenLabels) else TokenLabels(tokens, ids=ids, names=names)
+        self.labels.check_lengths(_axis_lengths(self.records, self.blocks))
         self.heads: list[HeadRef] = []
         rec_labels = _record_labels(self.records)
         for r, rec in enumerate(self.records):
@@ -361,9 +388,14 @@ class Scene:
             ("block", "@name"), ("position", "$x{tok}"), ("norm", "@image{0.000}")],
             formatters={"$x": CustomJSHover(args=dict(src=self.stream_src), code=_STREAM_AT)}))
 
-        # ---- twins
+        # ---- twins: heads ordered by clusters (average linkage) so look-alikes sit together; labelled axes
         n = len(self.heads)
-        self.glab_src = ColumnDataSource(dict(tok=[_short(h.label, 48) for h in self.heads]), name="as-glab")
+        self.twin_order = _cluster_order(self.distances) if self.distances is not None else list(range(n))
+        self.twin_pos = [0] * n
+        for at, g in enumerate(self.twin_order):
+            self.twin_pos[g] = at
+        self.glab_src = ColumnDataSource(dict(tok=[_short(self.heads[g].label, 48) for g in self.twin_order]),
+                                         name="as-glab")
         self.twin_src = ColumnDataSource(dict(image=[], x=[], y=[], dw=[], dh=[]), name="as-twin-src")
         self.twin_pick_src = ColumnDataSource(dict(x=[], y=[], w=[], h=[]), name="as-twin-pick")
         twin_top = 1.0 if self.distances is None or not np.isfinite(self.distances).any() else max(
@@ -377,7 +409,16 @@ class Scene:
                                     color_mapper=self.twin_mapper)
         self.twins_fig.rect(x="x", y="y", width="w", height="h", source=self.twin_pick_src, fill_alpha=0,
                             line_color=PICK_COLOUR, line_width=1.5)
-        self.twins_fig.axis.visible = False
+        every = max(1, -(-n // 36))  # at most 36 tick labels per axis; hover names every head
+        ticks = [at + 0.5 for at in range(0, n, every)]
+        names = {at + 0.5: self._compact(self.twin_order[at]) for at in range(0, n, every)}
+        for ax, text in ((self.twins_fig.xaxis, "head (ordered by clusters)"),
+                         (self.twins_fig.yaxis, "head (layer.head)")):
+            ax.ticker = FixedTicker(ticks=ticks)
+            ax.major_label_overrides = names
+            ax.axis_label = text
+            ax.major_label_text_font_size = "8px" if n > 24 else "10px"
+        self.twins_fig.xaxis.major_label_orientation = 1.2
         self.twins_fig.center = []  # no grid lines (fewer models to send and draw)
         self.twins_fig.add_layout(ColorBar(color_mapper=self.twin_mapper, width=12), "right")
         self.twins_fig.add_tools(HoverTool(renderers=[timg], tooltips=[
@@ -387,7 +428,8 @@ class Scene:
             "$x": CustomJSHover(args=dict(src=self.glab_src), code=_TOKEN_AT.replace("Math.round(value)",
                                                                                      "Math.floor(value)"))}))
         if self.distances is not None:
-            self.twin_src.data = dict(image=[self.distances], x=[0], y=[0], dw=[n], dh=[n])
+            order = np.asarray(self.twin_order)
+            self.twin_src.data = dict(image=[self.distances[np.ix_(order, order)]], x=[0], y=[0], dw=[n], dh=[n])
 
         # ---- findings and the caution line
         self.findings_div = Div(name="as-findings", width=560, styles={"overflow": "auto", "max-height": "460px"},
@@ -416,7 +458,12 @@ class Scene:
         """The head of the twins matrix row at data coordinate *y* (None outside the matrix)."""
         if self.distances is None or y is None or not 0 <= y < len(self.heads):
             return None
-        return int(y)
+        return self.twin_order[int(y)]
+
+    def _compact(self, g: int) -> str:
+        """Short axis name of head *g*: record number (call order) and head, ``"3.7"``."""
+        h = self.heads[g]
+        return f"{h.record}.{h.head}"
 
     def lens_arrays(self, g: int, item: int) -> dict[str, Any]:
         """The selected map for display: weights (pooled past lens_side), veil codes, labels, title."""
@@ -461,7 +508,8 @@ class Scene:
         n = len(self.heads)
         twins = dict(x=[], y=[], w=[], h=[])
         if self.distances is not None:
-            twins = dict(x=[n / 2, g + 0.5], y=[g + 0.5, n / 2], w=[n, 1], h=[1, n])
+            at = self.twin_pos[g]
+            twins = dict(x=[n / 2, at + 0.5], y=[at + 0.5, n / 2], w=[n, 1], h=[1, n])
         return dict(pick=dict(x=[h.slot + 0.5], y=[h.record + 0.5]), stream=stream, twins=twins)
 
     def select(self, g: int, item: int | None = None) -> None:

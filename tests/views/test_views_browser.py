@@ -40,6 +40,16 @@ STATE_JS = """() => {
   }
   return null; }"""
 
+# The same without the lens' pixel values (a 512 x 512 lens is too large to spread into Math.max).
+SMALL_STATE_JS = """() => {
+  if (!window.Bokeh) return null;
+  for (const d of Bokeh.documents) {
+    const lens = d.get_model_by_name('as-lens');
+    if (!lens) continue;
+    return {title: lens.title.text, idle: d.is_idle, twin_y: Array.from(d.get_model_by_name('as-twin-pick').data.y)};
+  }
+  return null; }"""
+
 # Page coordinates of data point (x, y) in the figure named `name`, via the figure's own scales.
 SCREEN_JS = """([name, x, y]) => {
   for (const v of Bokeh.index.all_views()) {
@@ -255,3 +265,45 @@ def test_exported_page_offline_from_file(playwright, tmp_path, tmp_path_factory)
         page.screenshot(path=str(ARTIFACTS / "dashboard_page.png"), full_page=True)
         assert not page.problems, page.problems
         assert remote == []
+
+
+@pytest.mark.slow
+def test_exported_page_at_144_heads_and_1024_positions(playwright, tmp_path, tmp_path_factory):
+    """A GPT-2-shaped capture of 12 x 12 heads at T=1024 (narrow width to keep the forward cheap), offline page."""
+    import torch
+    import transformers
+
+    import attnscope
+    from attnscope.analyses.similarity import head_distances
+
+    torch.manual_seed(0)
+    cfg = transformers.GPT2Config(n_layer=12, n_head=12, n_embd=96, n_positions=1024, vocab_size=500,
+                                  resid_pdrop=0.0, embd_pdrop=0.0, attn_pdrop=0.0)
+    model = transformers.GPT2Model._from_config(cfg, attn_implementation="eager").eval()
+    ids = torch.randint(0, 500, (1, 1024))
+    with torch.no_grad(), attnscope.capture(model) as cap:
+        model(ids)
+    assert sum(len(r.heads) for r in cap.attention) == 144
+    dist = head_distances(cap)
+    path = tmp_path / "large.html"
+    with pytest.warns(attnscope.AttnscopeWarning):  # maps pooled for the page and the lens: said, not silent
+        export_html(cap, path, tokens=[f"w{i}" for i in range(1024)], distances=dist)
+    assert path.stat().st_size <= 20 * 10 ** 6
+    with chromium(playwright, tmp_path_factory.mktemp("large"), width=1900, height=2200) as ctx:
+        page = watch(ctx.new_page())
+        page.goto(path.as_uri())
+        page.locator("canvas").first.wait_for(state="visible", timeout=60_000)
+        page.wait_for_function(f"() => ({SMALL_STATE_JS})()?.idle === true", timeout=60_000)
+        ARTIFACTS.mkdir(exist_ok=True)
+        page.screenshot(path=str(ARTIFACTS / "page_144_heads.png"), full_page=True)
+        assert page.evaluate(COLOURS_JS, ["as-twins"]) > 10 and page.evaluate(COLOURS_JS, ["as-atlas"]) > 10
+        # a tap on row 40 of the clustered twins matrix selects the head drawn there
+        axis = page.evaluate("""() => { for (const d of Bokeh.documents) { const f = d.get_model_by_name('as-twins');
+          if (f) return [f.below[0].ticker.ticks.length, f.left[0].axis_label]; } return null; }""")
+        assert axis == [36, "head (layer.head)"]  # 144 heads, every 4th labelled on the axis
+        x, y = page.evaluate(SCREEN_JS, ["as-twins", 10.5, 40.5])
+        page.mouse.click(x, y)
+        page.wait_for_function(f"() => ({SMALL_STATE_JS})().twin_y[0] === 40.5", timeout=20_000)
+        ARTIFACTS.mkdir(exist_ok=True)
+        page.screenshot(path=str(ARTIFACTS / "page_144_heads.png"), full_page=True)
+        assert not page.problems

@@ -105,7 +105,8 @@ def test_selecting_a_head_updates_every_linked_view(translator):
     assert list(s.cells_src.selected.indices) == [g]
     assert board.head_choice.value == g
     assert s.stream_pick_src.data["y"] == [2.5] != before["stream"]["y"]  # block decoder.layers.0
-    assert s.twin_pick_src.data["y"][0] == g + 0.5 != before["twins"]["y"][0]
+    assert s.twin_pick_src.data["y"][0] == s.twin_pos[g] + 0.5 != before["twins"]["y"][0]  # clustered order
+    assert s.twin_order[s.twin_pos[g]] == g and s.twin_row(s.twin_pos[g] + 0.5) == g
     assert s.qlab_src.data["tok"] == TARGET and s.klab_src.data["tok"] == SOURCE  # cross: queries from target
     assert s.lens_src.data["dh"] == [4] and s.lens_src.data["dw"] == [6]
     assert (s.lens_fig.x_range.end, s.lens_fig.y_range.start) == (5.5, 3.5)
@@ -130,9 +131,10 @@ def test_a_tap_on_a_twins_row_selects_its_head(translator):
     board = dashboard(translator)
     fig = board.scene.twins_fig
     fig._trigger_event(Tap(model=fig, x=3.2, y=13.6))  # what jupyter_bokeh does with a browser tap event
-    assert board.head == 13 and list(board.scene.cells_src.selected.indices) == [13]
+    g = board.scene.twin_order[13]  # row 13 of the clustered order
+    assert board.head == g and list(board.scene.cells_src.selected.indices) == [g]
     fig._trigger_event(Tap(model=fig, x=3.2, y=-4.0))  # outside the matrix: nothing changes
-    assert board.head == 13
+    assert board.head == g
 
 
 def test_batch_item_chooser_changes_atlas_stream_and_lens(translator):
@@ -194,7 +196,10 @@ def test_given_distances_are_matched_to_heads_by_label(translator):
     frame = head_distances(translator)
     order = np.random.default_rng(0).permutation(len(frame))
     board = dashboard(translator, distances=frame.iloc[order, order])  # shuffled: matched by (call, name, head)
-    np.testing.assert_allclose(board.scene.twin_src.data["image"][0], frame.to_numpy(), rtol=1e-6, equal_nan=True)
+    at = np.asarray(board.scene.twin_order)  # drawn in cluster order: the same matrix, rows and columns permuted
+    np.testing.assert_allclose(board.scene.twin_src.data["image"][0], frame.to_numpy()[np.ix_(at, at)], rtol=1e-6,
+                               equal_nan=True)
+    assert sorted(at) == list(range(len(frame)))
     assert "given" in board.scene.twins_fig.title.text
     with pytest.raises(attnscope.ShapeError, match=r"expected a \(24, 24\) matrix"):
         dashboard(translator, distances=np.zeros((3, 3)))
@@ -326,3 +331,23 @@ def test_findings_and_checks_from_the_analyses_are_listed(translator):
     assert "silent heads" in text and "twin heads" in text and "causal (encoder layer)" in text
     assert twins and f"<td>{twins[0].name_a}</td>" in text and "<th>distance</th>" in text
     assert "<th>ok</th>" in text and "<td>True</td>" in text and "<th>dependency</th>" not in text
+
+
+def test_twins_matrix_is_labelled_and_ordered_by_clusters():
+    from scipy.cluster.hierarchy import leaves_list, linkage
+    from scipy.spatial.distance import squareform
+
+    torch.manual_seed(0)
+    mha = torch.nn.MultiheadAttention(8, 4, batch_first=True)
+    x = torch.randn(1, 6, 8)
+    with attnscope.capture(mha) as cap:
+        mha(x, x, x)
+    # planted: heads 0 and 3 alike, 1 and 2 alike; the clustered order must put each pair side by side
+    d = np.array([[0, .9, .8, .05], [.9, 0, .04, .7], [.8, .04, 0, .9], [.05, .7, .9, 0]])
+    s = dashboard(cap, distances=d).scene
+    expected = [int(i) for i in leaves_list(linkage(squareform(d), method="average"))]  # reference: scipy
+    assert s.twin_order == expected
+    assert abs(s.twin_pos[0] - s.twin_pos[3]) == 1 and abs(s.twin_pos[1] - s.twin_pos[2]) == 1
+    for ax in (s.twins_fig.xaxis[0], s.twins_fig.yaxis[0]):
+        assert ax.visible and ax.axis_label.startswith("head")
+        assert [ax.major_label_overrides[t] for t in ax.ticker.ticks] == [f"0.{g}" for g in expected]

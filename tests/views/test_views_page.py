@@ -64,3 +64,32 @@ def test_dashboard_in_a_real_kernel_brings_bokehjs_itself(tmp_path):
     assert nb.cells[2].outputs[0]["data"]["application/javascript"] == js
     state = nb.metadata["widgets"]["application/vnd.jupyter.widget-state+json"]["state"]
     assert {"BokehModel", "DropdownModel", "VBoxModel"} <= {m["model_name"] for m in state.values()}
+
+
+@pytest.mark.parametrize("count", [5, 8])
+def test_token_labels_of_the_wrong_length_raise_and_write_nothing(tmp_path, count):
+    import torch
+
+    import attnscope
+    from attnscope.errors import ShapeError
+
+    torch.manual_seed(0)
+    mha = torch.nn.MultiheadAttention(8, 2, batch_first=True)
+    x = torch.randn(1, 6, 8)  # 6 positions: the only length a token list may have
+    with attnscope.capture(mha) as cap:
+        mha(x, x, x)
+    tokens = [f"t{i}" for i in range(count)]
+    path = tmp_path / "page.html"
+    with pytest.raises(ShapeError, match=rf"sequence of {count} strings fits no axis.*expected 6 \(keys of"):
+        attnscope.export_html(cap, path, tokens=tokens)
+    assert not path.exists()
+    with pytest.raises(ShapeError, match=rf"{count} strings.*expected 6"):
+        attnscope.dashboard(cap, tokens=tokens)
+    with pytest.raises(ShapeError, match=rf"{count} strings"):
+        attnscope.dashboard(cap, tokens={"source": tokens})
+    if count > 6:  # one list per batch item may be shorter (a padded item), never longer than every axis
+        with pytest.raises(ShapeError, match=r"tokens\[0\]: a sequence of 8 strings is longer.*at most 6"):
+            attnscope.dashboard(cap, tokens=[tokens])
+    else:
+        assert attnscope.dashboard(cap, tokens=[tokens]).scene.lens_arrays(0, 0)["k"] == [*tokens, "5"]
+    assert attnscope.export_html(cap, path, tokens=tokens[:6] + ["x"] * (6 - count)).exists()  # right length: fine
