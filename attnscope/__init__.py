@@ -46,6 +46,9 @@ _LAZY = {
     "assert_padding": "attnscope.analyses.causality",
     "check_causal": "attnscope.analyses.causality",
     "check_padding": "attnscope.analyses.causality",
+    "CacheReport": "attnscope.analyses.cache",
+    "assert_cache": "attnscope.analyses.cache",
+    "check_cache": "attnscope.analyses.cache",
     # heads
     "dead_heads": "attnscope.analyses.heads",
     "duplicate_heads": "attnscope.analyses.heads",

@@ -11,6 +11,7 @@ EXPECTED = [
     "head_clusters", "head_distances", "head_importance", "head_output_norms", "leak_summary", "leak_table",
     "load", "save", "stitch_steps", "tap",
 ]
+EXPECTED += ["CacheReport", "assert_cache", "check_cache"]  # cache agreement
 
 
 def test_all_is_sorted_and_locked():
