@@ -57,6 +57,7 @@ _LAZY = {
     "head_distances": "attnscope.analyses.similarity",
     "leak_summary": "attnscope.analyses.leaks",
     "leak_table": "attnscope.analyses.leaks",
+    "pattern_table": "attnscope.analyses.leaks",
     "ablate": "attnscope.analyses.ablation",
     "head_importance": "attnscope.analyses.ablation",
     "attention_rollout": "attnscope.analyses.rollout",

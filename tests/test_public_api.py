@@ -11,7 +11,7 @@ EXPECTED = [
     "head_clusters", "head_distances", "head_importance", "head_output_norms", "leak_summary", "leak_table",
     "load", "save", "stitch_steps", "tap",
 ]
-EXPECTED += ["CacheReport", "assert_cache", "check_cache"]  # cache agreement
+EXPECTED += ["CacheReport", "assert_cache", "check_cache", "pattern_table"]  # mask contracts
 
 
 def test_all_is_sorted_and_locked():
