@@ -15,7 +15,8 @@ class name says attention                HF and most hand-written code name thei
 (``attention``/``attn``, any case)
 ``forward`` source calls                 hand-written blocks of any name that compute attention themselves
 ``scaled_dot_product_attention``,
-``softmax(`` or ``tap(``
+``flex_attention(``, ``softmax(`` or
+``tap(``
 containers never count                   ``nn.ModuleList``/``nn.ModuleDict``/``nn.Sequential`` hold blocks, never compute
 torch.nn's own classes are not read      their sources call softmax for other reasons
 =======================================  ==========================================================================
@@ -29,6 +30,7 @@ path                                     seen as
 ``sdpa``                                 ``F.scaled_dot_product_attention``, weights recomputed beside the call
 ``softmax``                              a softmax over the last axis of a 4-D tensor inside an attention module
 ``tap``                                  :func:`attnscope.tap` called by the user's own code
+``flex``                                 ``flex_attention``, weights recomputed from q, k, score_mod, block mask
 =======================================  ==========================================================================
 
 Self or cross (per call, first rule that applies; :func:`kind_hint`)
@@ -75,7 +77,7 @@ from attnscope.names import within
 __all__ = ["CONTAINERS", "NN_LAYERS", "is_attention_module", "kind_hint"]
 
 _ATTN_CLASS = re.compile(r"attention|attn", re.IGNORECASE)
-_ATTN_SOURCE = re.compile(r"scaled_dot_product_attention|softmax\(|\btap\(")
+_ATTN_SOURCE = re.compile(r"scaled_dot_product_attention|flex_attention\(|softmax\(|\btap\(")
 #: torch's transformer layers: blocks by themselves.
 NN_LAYERS = (nn.TransformerEncoderLayer, nn.TransformerDecoderLayer)
 #: containers: hold modules, never compute attention.
