@@ -13,6 +13,10 @@ each position's document id. The mask the model builds each forward says which k
 can be given the model's own contract. ``alibi=True`` adds a per-head distance bias through ``score_mod``
 (ALiBi, Press et al., ICLR 2022).
 
+FlexAttention has no backward pass on CPU, so training runs ``forward(..., dense=True)``: the same
+``mask_mod`` made dense by ``create_mask`` and handed to ``F.scaled_dot_product_attention`` (same weights, same
+pattern; ``alibi`` is flex-only).
+
 >>> import torch, warnings
 >>> model = FlexDecoder(FlexDecoderConfig(pattern="documents")).eval()
 >>> ids = torch.randint(0, 16, (1, 8)); docs = torch.tensor([[0, 0, 0, 1, 1, 1, 1, 1]])
@@ -29,8 +33,9 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 import torch
+import torch.nn.functional as F
 from torch import nn
-from torch.nn.attention.flex_attention import create_block_mask, flex_attention
+from torch.nn.attention.flex_attention import create_block_mask, create_mask, flex_attention
 
 __all__ = ["FlexDecoder", "FlexDecoderConfig", "FlexSelfAttention", "PATTERNS"]
 
@@ -77,7 +82,10 @@ class FlexSelfAttention(nn.Module):
         b, t, d = x.shape
         q, k, v = (z.view(b, t, self.heads, d // self.heads).transpose(1, 2)  # (B, H, T, D/H)
                    for z in self.qkv(x).chunk(3, dim=-1))
-        y = flex_attention(q, k, v, score_mod=self.score_mod if self.alibi else None, block_mask=block_mask)
+        if isinstance(block_mask, torch.Tensor):  # dense (B, 1, T, T) bool: the training path
+            y = F.scaled_dot_product_attention(q, k, v, attn_mask=block_mask)
+        else:
+            y = flex_attention(q, k, v, score_mod=self.score_mod if self.alibi else None, block_mask=block_mask)
         return self.out_proj(y.transpose(1, 2).reshape(b, t, d))  # (B, T, D)
 
 
@@ -119,9 +127,12 @@ class FlexDecoder(nn.Module):
             return lambda b, h, q_idx, kv_idx: (q_idx >= kv_idx) & (q_idx - kv_idx <= reach)
         return lambda b, h, q_idx, kv_idx: q_idx >= kv_idx
 
-    def forward(self, ids: torch.Tensor, docs: torch.Tensor | None = None) -> torch.Tensor:
+    def forward(self, ids: torch.Tensor, docs: torch.Tensor | None = None, *, dense: bool = False) -> torch.Tensor:
         B, T = ids.shape
-        block_mask = create_block_mask(self.mask_mod(docs), B, None, T, T, device="cpu")
+        if dense and self.config.alibi:
+            raise ValueError("dense=True (the SDPA training path) has no score_mod; build the model with alibi=False")
+        make = create_mask if dense else create_block_mask
+        block_mask = make(self.mask_mod(docs), B, None, T, T, device="cpu")
         x = self.embed(ids) + self.positions(torch.arange(T, device=ids.device))  # (B, T, D)
         for block in self.blocks:
             x = block(x, block_mask)
