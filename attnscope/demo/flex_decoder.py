@@ -20,7 +20,7 @@ pattern; ``alibi`` is flex-only).
 >>> import torch, warnings
 >>> model = FlexDecoder(FlexDecoderConfig(pattern="documents")).eval()
 >>> ids = torch.randint(0, 16, (1, 8)); docs = torch.tensor([[0, 0, 0, 1, 1, 1, 1, 1]])
->>> with warnings.catch_warnings():
+>>> with warnings.catch_warnings(), torch.no_grad():   # no FlexAttention backward on CPU
 ...     warnings.simplefilter("ignore")            # FlexAttention's note that it runs uncompiled
 ...     model(ids, docs).shape
 torch.Size([1, 8, 16])
