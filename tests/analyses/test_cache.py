@@ -146,3 +146,20 @@ def test_check_cache_command_exit_codes(tmp_path, monkeypatch, capsys):
     assert main(["check-cache", "cachezoo:bad"]) == 1
     assert "first difference at position 4" in capsys.readouterr().out
     assert main(["check-cache", "cachezoo:nothing"]) == 2
+
+
+def test_step_that_breaks_the_contract_fails_at_the_door():
+    model = decoder()
+    with pytest.raises(attnscope.ProbeError, match=r"\(out_chunk, state\)"):
+        check_cache(lambda chunk, state: model.step(chunk, state)[0], ids(T=4), full=model)
+    with pytest.raises(ShapeError, match="chunk's 1 positions"):
+        check_cache(lambda chunk, state: (model(chunk)[:, :0], state), ids(T=4), full=model)
+    with pytest.raises(ShapeError, match="full"):
+        check_cache(model.step, ids(T=4), full=lambda x: model(x)[:, :2])
+
+
+def test_modes_are_restored_and_float64_uses_its_own_tolerance():
+    model = decoder().double().train()
+    report = check_cache(model.step, ids(T=6), full=model, model=model)
+    assert report.ok and report.tolerance == 1e-8  # float64 outputs: 1e-8, as check_causal
+    assert all(m.training for m in model.modules())  # train mode given back
