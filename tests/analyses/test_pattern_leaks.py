@@ -137,3 +137,12 @@ def test_dashboard_veil_shows_the_declared_pattern():
     w = cap.attention[0].weights[0, 0]
     assert ((declared["veil"] == 2) == (outside & (w > 1e-6))).all()  # 1e-6: the view's leak floor
     assert (declared["veil"] == 2).any() and "declared pattern" in declared["title"]
+
+
+def test_statistics_only_capture_gives_nan_not_zero():
+    torch.manual_seed(0)
+    model = CachedDecoder(CachedDecoderConfig()).eval()
+    with torch.no_grad(), attnscope.capture(model, keep="stats") as cap:
+        model(torch.randint(0, 16, (1, T)))
+    t = pattern_table(cap, window_mod(2))
+    assert len(t) == 8 and t["outside_mass"].isna().all() and (t["worst_query"] == -1).all()
