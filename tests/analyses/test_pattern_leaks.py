@@ -146,3 +146,17 @@ def test_statistics_only_capture_gives_nan_not_zero():
         model(torch.randint(0, 16, (1, T)))
     t = pattern_table(cap, window_mod(2))
     assert len(t) == 8 and t["outside_mass"].isna().all() and (t["worst_query"] == -1).all()
+
+
+def test_pattern_builders_and_mask_mods_give_the_same_table():
+    from attnscope.analyses.patterns import documents_pattern, window_pattern
+
+    ids = torch.randint(0, 16, (2, T), generator=torch.Generator().manual_seed(5))
+    cap = capture_decoder(None, ids)
+    docs = torch.tensor([[0] * 5 + [1] * 7, [0] * 3 + [1] * 3 + [2] * 6])
+    by_builder = pattern_table(cap, documents_pattern(docs))  # (B, T, T) tensor
+    by_mod = pattern_table(cap, lambda b, h, q, kv: (docs[b, q] == docs[b, kv]) & (q >= kv))
+    np.testing.assert_allclose(by_builder["outside_mass"], by_mod["outside_mass"], rtol=0, atol=0)
+    assert (by_builder["outside_mass"] > 1e-3).all()
+    np.testing.assert_allclose(pattern_table(cap, window_pattern(T, 3))["outside_mass"],
+                               pattern_table(cap, window_mod(3))["outside_mass"], rtol=0, atol=0)

@@ -194,8 +194,11 @@ def check_verify_masks_and_cache(out: str, cells: list) -> None:
     # reference: a masked softmax puts exactly zero weight on a masked key (common practice, no source)
     grab(r"packed_docs: largest mean weight outside the documents pattern 0\n", out)
     # reference: the planted bug q - kv <= window lets window + 1 keys in (hand derivation)
-    assert float(grab(r"window_off_by_one: declared 4 keys, uses 5; largest mean weight outside the window "
-                      r"([\d.]+)", out)[1]) > 1e-2
+    by_mod = grab(r"window_off_by_one: declared 4 keys, uses 5; largest mean weight outside the window ([\d.]+)", out)
+    assert float(by_mod[1]) > 1e-2
+    # reference: the pattern builder and the predicate state the same window (test_patterns checks both
+    # against FlexAttention's create_mask), so the two tables agree
+    grab(rf"window_off_by_one against window_pattern\(24, 4\): largest mean weight outside {by_mod[1]}\n", out)
     grab(r"window_fixed: declared 4 keys, uses 4; largest mean weight outside the window 0\n", out)
     assert shows_dashboard(cells[5]), "the window section should display the dashboard with the declared veil"
     # reference: hand derivation: without a mask once a cache exists, single-token steps see no future (agree),
