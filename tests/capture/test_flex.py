@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
+
 import pytest
 import torch
 from torch import nn
@@ -137,3 +139,23 @@ def test_wrapper_is_removed_on_exit_and_on_error():
     assert [r.name for r in outer.attention] == ["blocks.0.attn", "blocks.1.attn"]  # both captures record
     assert [r.name for r in inner.attention] == ["attn"]
     assert torch.equal(torch.tensor(inner.attention[0].weights), torch.tensor(outer.attention[0].weights))
+
+
+def test_statistics_in_pieces_keep_each_items_batch_index(monkeypatch):
+    from attnscope.capture import recorder
+
+    def per_item(score, b, h, q, kv):  # item 1 is pushed onto key 0: the batch index matters
+        return score + 4.0 * b * (kv == 0)
+
+    torch.manual_seed(0)
+    m = Probe(per_item, documents).eval()
+    x = torch.randn(B, T, E * H)
+    with torch.no_grad(), attnscope.capture(m) as maps:
+        m(x)
+    monkeypatch.setattr(recorder, "_STATS_CHUNK_BYTES", 1)  # one batch item (and head) per piece
+    with torch.no_grad(), attnscope.capture(m, keep="stats") as stats:
+        m(x)
+    a, b = maps.head_table(), stats.head_table()
+    # reference: the same statistics computed from the full maps (keep="maps") and from one item at a time
+    for column in ("entropy", "sink_mass"):
+        np.testing.assert_allclose(a[column], b[column], rtol=1e-5, atol=1e-6)

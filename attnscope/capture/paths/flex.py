@@ -50,9 +50,12 @@ def _original() -> Callable[..., Any] | None:
 
 
 def _broadcast_or_vmap(fn: Callable[..., Any], value: torch.Tensor | None, B: int, H: int, Tq: int,
-                       Tk: int) -> torch.Tensor:
-    """``fn(b, h, q_idx, kv_idx)`` (or ``fn(score, b, h, q_idx, kv_idx)``) at every cell, as ``(B, H, Tq, Tk)``."""
-    idx = (torch.arange(B).view(B, 1, 1, 1), torch.arange(H).view(1, H, 1, 1),
+                       Tk: int, b0: int = 0) -> torch.Tensor:
+    """``fn(b, h, q_idx, kv_idx)`` (or ``fn(score, b, h, q_idx, kv_idx)``) at every cell, as ``(B, H, Tq, Tk)``.
+
+    Batch indices run from *b0* (a slice of the batch keeps the indices the call gave its items).
+    """
+    idx = (torch.arange(b0, b0 + B).view(B, 1, 1, 1), torch.arange(H).view(1, H, 1, 1),
            torch.arange(Tq).view(1, 1, Tq, 1), torch.arange(Tk).view(1, 1, 1, Tk))
     try:
         out = fn(value, *idx) if value is not None else fn(*idx)
@@ -63,12 +66,12 @@ def _broadcast_or_vmap(fn: Callable[..., Any], value: torch.Tensor | None, B: in
         f = fn
         for dims in ((None, None, None, 0), (None, None, 0, None), (None, 0, None, None), (0, None, None, None)):
             f = torch.vmap(f, in_dims=dims)
-        return f(*(torch.arange(n) for n in (B, H, Tq, Tk)))
+        return f(torch.arange(b0, b0 + B), *(torch.arange(n) for n in (H, Tq, Tk)))
     f = fn
     for dims in ((0, None, None, None, 0), (0, None, None, 0, None), (0, None, 0, None, None),
                  (0, 0, None, None, None)):
         f = torch.vmap(f, in_dims=dims)
-    return f(value, *(torch.arange(n) for n in (B, H, Tq, Tk)))
+    return f(value, torch.arange(b0, b0 + B), *(torch.arange(n) for n in (H, Tq, Tk)))
 
 
 def flex_allowed(block_mask: Any, B: int, H: int, Tq: int, Tk: int) -> torch.Tensor | None:
@@ -86,8 +89,11 @@ def flex_allowed(block_mask: Any, B: int, H: int, Tq: int, Tk: int) -> torch.Ten
 
 
 def flex_weights(q: torch.Tensor, k: torch.Tensor, score_mod: Callable[..., Any] | None,
-                 allowed: torch.Tensor | None, scale: float | None, enable_gqa: bool) -> torch.Tensor:
-    """Float32 ``(B, Hq, Tq, Tk)`` weights of one FlexAttention call (``allowed`` as :func:`flex_allowed`)."""
+                 allowed: torch.Tensor | None, scale: float | None, enable_gqa: bool, b0: int = 0) -> torch.Tensor:
+    """Float32 ``(B, Hq, Tq, Tk)`` weights of one FlexAttention call (``allowed`` as :func:`flex_allowed`).
+
+    *q* and *k* may be a slice of the call's batch starting at item *b0*.
+    """
     q, k = q.detach().float(), k.detach().float()
     if enable_gqa and k.size(1) != q.size(1):
         k = k.repeat_interleave(q.size(1) // k.size(1), dim=1)
@@ -95,7 +101,7 @@ def flex_weights(q: torch.Tensor, k: torch.Tensor, score_mod: Callable[..., Any]
     scale = 1.0 / math.sqrt(q.size(-1)) if scale is None else scale
     scores = torch.matmul(q, k.transpose(-2, -1)) * scale  # (B, H, Tq, Tk)
     if score_mod is not None:
-        scores = _broadcast_or_vmap(score_mod, scores, B, H, Tq, Tk).float()
+        scores = _broadcast_or_vmap(score_mod, scores, B, H, Tq, Tk, b0).float()
     if allowed is not None:
         scores = scores.masked_fill(~allowed, float("-inf"))
     weights = torch.softmax(scores, dim=-1)
@@ -114,7 +120,8 @@ def _record(rec: Recorder, frame: Frame, params: dict[str, Any]) -> None:
     score_mod, scale, gqa = params.get("score_mod"), params.get("scale"), bool(params.get("enable_gqa", False))
 
     def compute(sl: slice, hs: list[int]) -> torch.Tensor:
-        w = flex_weights(q4[sl], k4[sl], score_mod, None if full_allowed is None else full_allowed[sl], scale, gqa)
+        w = flex_weights(q4[sl], k4[sl], score_mod, None if full_allowed is None else full_allowed[sl], scale, gqa,
+                         b0=range(b)[sl].start if b else 0)
         return w[:, hs].contiguous()  # (b, len(hs), Tq, Tk); score_mod sees every head's index
 
     causal = kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset)
