@@ -6,6 +6,7 @@
     attnscope page TARGET --out page.html            standalone dashboard page of one forward
     attnscope check-causal TARGET [--mode exhaustive]
     attnscope check-padding TARGET
+    attnscope check-mask TARGET [--window W --layers L | --prefix N] [--mode exhaustive]
     attnscope check-cache TARGET
 
 TARGET is ``package.module:factory``, a callable returning one of:
@@ -14,8 +15,11 @@ TARGET is ``package.module:factory``, a callable returning one of:
 * ``(model, inputs)``: inputs a tensor or a tuple of positional arguments;
 * for the checks, ``(fn, x)`` or ``(fn, x, model)``: ``fn`` any callable of ``x`` (``lambda tgt: model(src, tgt)``
   for a seq2seq decoder), ``model`` the module whose submodules are blamed; for check-padding
-  ``(fn, x, pad_mask)`` or ``(fn, x, pad_mask, model)``; for check-cache an HF-style model, ``(model, ids)``,
-  or ``(step, ids, full)`` / ``(step, ids, full, model)`` for a hand-written cached decoder.
+  ``(fn, x, pad_mask)`` or ``(fn, x, pad_mask, model)``; for check-mask ``(fn, x, allowed)`` or
+  ``(fn, x, allowed, model)`` (``allowed`` a bool ``(T, T)`` / ``(B, T, T)`` tensor or a
+  ``(b, h, q_idx, kv_idx)`` predicate), or what check-causal takes plus ``--window`` or ``--prefix``; for
+  check-cache an HF-style model, ``(model, ids)``, or ``(step, ids, full)`` / ``(step, ids, full, model)`` for a
+  hand-written cached decoder.
 
 Exit codes: 0 success, 1 a check failed, 2 bad usage or an attnscope error (message on stderr).
 """
@@ -110,17 +114,19 @@ def cmd_page(a: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _check_inputs(a: argparse.Namespace, padding: bool) -> tuple[Any, torch.Tensor, Any, nn.Module | None]:
-    """``(fn, x, pad_mask, model)`` from TARGET: a model, ``(fn, x[, model])`` or ``(fn, x, pad_mask[, model])``."""
+def _check_inputs(a: argparse.Namespace, padding: bool,
+                  third: str = "pad_mask") -> tuple[Any, torch.Tensor, Any, nn.Module | None]:
+    """``(fn, x, third, model)`` from TARGET: a model, ``(fn, x[, model])`` or ``(fn, x, third[, model])``."""
     target = load_target(a.target)
     if isinstance(target, nn.Module):
         if padding:
-            raise OptionError("check-padding needs (fn, x, pad_mask) from TARGET, to know which positions are padded")
+            raise OptionError(f"check-{third.replace('_', '-')} needs (fn, x, {third}) from TARGET"
+                              + (", to know which positions are padded" if third == "pad_mask" else ""))
         model, (x, *_) = model_and_inputs(target, a.batch, a.seq, a.seed)
         return model, x, None, None
     sizes = (3, 4) if padding else (2, 3)
     if not isinstance(target, tuple) or len(target) not in sizes or not callable(target[0]):
-        want = "(fn, x, pad_mask[, model])" if padding else "a model or (fn, x[, model])"
+        want = f"(fn, x, {third}[, model])" if padding else "a model or (fn, x[, model])"
         raise OptionError(f"TARGET must give {want}; it gave {type(target).__name__}")
     fn, x = target[0], target[1]
     pad = target[2] if padding else None
@@ -151,6 +157,27 @@ def cmd_check_padding(a: argparse.Namespace) -> int:
 
     fn, x, pad, model = _check_inputs(a, padding=True)
     report = check_padding(fn, x, pad, model=model, **_check_options(a))
+    print(report.summary())
+    return EXIT_OK if report.ok else EXIT_CHECK_FAILED
+
+
+def cmd_check_mask(a: argparse.Namespace) -> int:
+    from attnscope.analyses.contracts import check_mask
+    from attnscope.analyses.patterns import prefix_pattern, window_pattern
+
+    built = a.window is not None or a.prefix is not None
+    if a.window is not None and a.prefix is not None:
+        raise OptionError("give one of --window and --prefix, not both")
+    target = load_target(a.target)
+    sized = isinstance(target, tuple) and len(target) in (3, 4) and not isinstance(target[2], nn.Module)
+    if built == sized:
+        raise OptionError("check-mask needs the pattern from TARGET as (fn, x, allowed[, model]) or from "
+                          "--window/--prefix with a model or (fn, x[, model]), one of the two")
+    fn, x, allowed, model = _check_inputs(a, padding=not built, third="allowed")
+    if built:
+        T = x.shape[a.seq_dim if a.seq_dim is not None else 1]
+        allowed = window_pattern(T, a.window, layers=a.layers) if a.window is not None else prefix_pattern(T, a.prefix)
+    report = check_mask(fn, x, allowed, model=model, **_check_options(a))
     print(report.summary())
     return EXIT_OK if report.ok else EXIT_CHECK_FAILED
 
@@ -258,16 +285,25 @@ def parser() -> argparse.ArgumentParser:
     g.set_defaults(run=cmd_page)
 
     for name, run, what in (("check-causal", cmd_check_causal, "no output position depends on a later input"),
-                            ("check-padding", cmd_check_padding, "outputs at real positions ignore padded content")):
+                            ("check-padding", cmd_check_padding, "outputs at real positions ignore padded content"),
+                            ("check-mask", cmd_check_mask, "outputs depend only on inputs a declared pattern allows")):
         c = sub.add_parser(name, help=f"behavioural check: {what}; exit 1 on a leak",
                            description=f"Perturb inputs and watch outputs: {what}. Exit 0 when it holds, 1 on a "
                                        "leak (with positions, magnitudes and the module that brings it in).")
         c.add_argument("target", help="package.module:factory giving "
                                       + ("(fn, x, pad_mask[, model])" if name == "check-padding"
+                                         else "(fn, x, allowed[, model]), or a model / (fn, x[, model]) with "
+                                              "--window or --prefix" if name == "check-mask"
                                          else "a model, (model, inputs) or (fn, x[, model])"))
         c.add_argument("--mode", choices=["screen", "exhaustive"], default="screen",
                        help="screen: O(log T) forwards; exhaustive: the full dependency matrix (default screen)")
-        c.add_argument("--seq-dim", type=int, default=1, help="axis of the output that lines up with x's positions")
+        c.add_argument("--seq-dim", type=int, default=None,
+                       help="axis of x and of the output holding positions (default: inferred, or refused)")
+        if name == "check-mask":
+            c.add_argument("--window", type=int, help="declare a causal sliding window of W keys (query included)")
+            c.add_argument("--layers", type=int, default=1, help="layers of that window stacked (reach L·(W−1)+1)")
+            c.add_argument("--prefix", type=int, help="declare a prefix-LM pattern: the first N positions see "
+                                                      "each other, causal after")
         c.add_argument("--tol", type=float, help="change counted as dependence, relative to the output scale")
         c.add_argument("--vocab", type=int, help="vocabulary size for token-id inputs (default: from the model)")
         _inputs_options(c)

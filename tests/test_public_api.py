@@ -10,6 +10,8 @@ EXPECTED = [
     "check_padding", "compare_captures", "dashboard", "dead_heads", "duplicate_heads", "export_html",
     "head_clusters", "head_distances", "head_importance", "head_output_norms", "leak_summary", "leak_table",
     "load", "save", "stitch_steps", "tap",
+    "MaskReport", "assert_mask", "causal_pattern", "check_mask", "documents_pattern", "pattern_from_predicate",
+    "prefix_pattern", "window_pattern",
 ]
 EXPECTED += ["CacheReport", "assert_cache", "check_cache", "pattern_table"]  # mask contracts
 

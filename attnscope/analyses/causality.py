@@ -55,7 +55,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import ExitStack, contextmanager
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any, NamedTuple
 
 import numpy as np
@@ -63,8 +63,8 @@ import torch
 from torch import nn
 
 from attnscope.analyses.probes.blame import find_blame
-from attnscope.analyses.probes.runner import Runner, default_tolerance, output_tensor
-from attnscope.errors import OptionError, ProbeError, ShapeError, suggest
+from attnscope.analyses.probes.runner import Runner, default_tolerance, one_position_hint, output_tensor
+from attnscope.errors import AttnscopeError, OptionError, ProbeError, ShapeError, suggest
 
 __all__ = [
     "CausalReport",
@@ -75,6 +75,7 @@ __all__ = [
     "assert_padding",
     "check_causal",
     "check_padding",
+    "resolve_axes",
 ]
 
 MODES = ("screen", "exhaustive")
@@ -121,6 +122,9 @@ class ProbeReport:
         forwards: calls of ``fn`` made, including the unperturbed one and, on failure, the rerun and blame runs.
         sequences: input sequences evaluated over all calls (batch items times perturbed copies).
         subject: the name the messages use for ``fn``.
+        seq_dim, batch_dim: the axes of ``x`` (and of the output) the probe perturbed and compared.
+        axis_source: how ``seq_dim`` was chosen: ``"given"``, from the model's attention layers, from a
+            probing forward, or a batch of one (see :func:`resolve_axes`).
     """
 
     ok: bool
@@ -137,6 +141,9 @@ class ProbeReport:
     forwards: int
     sequences: int
     subject: str
+    seq_dim: int = 1
+    batch_dim: int = 0
+    axis_source: str = "given"
 
     def __repr__(self) -> str:
         first = tuple(self.violations[0][:2]) + (round(self.violations[0][2], 4),) if self.violations else None
@@ -145,12 +152,13 @@ class ProbeReport:
 
     def summary(self) -> str:
         """One paragraph in words: the first violation with its magnitude, the leaking positions, the blame."""
-        tail = f"[{self.mode} mode, {self.forwards} calls of fn, tolerance {self.tolerance:.1e}]"
+        tail = (f"[{self.mode} mode, positions on axis {self.seq_dim} ({self.axis_source}), {self.forwards} calls "
+                f"of fn, tolerance {self.tolerance:.1e}]")
         if self.ok:
             return f"{self.subject} {self._pass_text()} {tail}"
         parts = [f"{self.subject} {self._fail_verb()}:"]
         if self.violations:
-            i, j, m = self.violations[0]
+            i, j, m = self.violations[0][:3]
             parts.append(self._pair_text(i, j, m) + ".")
         n = len(self.leaking_outputs)
         shown = ", ".join(map(str, self.leaking_outputs[:_LISTED])) + (", ..." if n > _LISTED else "")
@@ -159,7 +167,7 @@ class ProbeReport:
             where += self._screen_note()
         parts.append(where + ".")
         if len(self.violations) > 1:
-            pairs = ", ".join(f"{i}<-{j} ({m:.3g})" for i, j, m in self.violations[:_LISTED])
+            pairs = ", ".join(f"{v[0]}<-{v[1]} ({v[2]:.3g})" for v in self.violations[:_LISTED])
             more = f" and {len(self.violations) - _LISTED} more" if len(self.violations) > _LISTED else ""
             parts.append(f"Pairs output<-input (change): {pairs}{more}.")
         parts.append(self._blame_text())
@@ -306,19 +314,160 @@ def _steady(modules: Sequence[nn.Module], seed: int, device: torch.device) -> It
                 m.training = training
 
 
+# -- which axis holds positions -------------------------------------------------------------------------------
+
+
+class Axes(NamedTuple):
+    """Where positions and batch items sit in ``x``, how that was decided, and the forwards it cost."""
+
+    seq_dim: int
+    batch_dim: int | None
+    source: str
+    forwards: int
+
+
+def _layer_layout(root: nn.Module | None) -> dict[str, bool]:
+    """``{attention module or block name: sequence-first?}`` from the model's torch attention layers."""
+    if root is None:
+        return {}
+    from attnscope.capture.discovery import map_model
+
+    found: dict[str, bool] = {}
+    try:
+        seq_first = getattr(map_model(root), "seq_first", frozenset())
+    except Exception:  # noqa: BLE001 - the static map is a hint here; the probing forward decides the rest
+        seq_first = frozenset()
+    for name in sorted(seq_first):
+        found[name or type(root).__name__] = True
+    for name, m in root.named_modules():
+        if isinstance(m, nn.MultiheadAttention) and not any(name.startswith(f + ".") for f in seq_first if f):
+            found[name or type(root).__name__] = not m.batch_first
+    return found
+
+
+def _mixes(fn: Callable[[torch.Tensor], Any], x: torch.Tensor, y0: torch.Tensor, axis: int, tol: float) -> bool | None:
+    """Whether changing index 0 along *axis* of ``x`` moves outputs at other indices along it (None: cannot say)."""
+    bumped = x.clone()
+    lead = bumped.narrow(axis, 0, 1)
+    if x.is_floating_point() or x.is_complex():
+        std = float(x.double().std()) if x.numel() > 1 else 1.0
+        gen = torch.Generator().manual_seed(1234)
+        lead += torch.randn(lead.shape, generator=gen, dtype=torch.float64).to(x.dtype).to(x.device) * (std or 1.0)
+    else:
+        lead.copy_(torch.where(lead == 0, torch.ones_like(lead), torch.zeros_like(lead)))
+    y = output_tensor(fn(bumped)).detach()
+    if y.shape != y0.shape or y.dim() <= axis or y.shape[axis] != x.shape[axis]:
+        return None
+    rest0, rest = y0.narrow(axis, 1, y0.shape[axis] - 1), y.narrow(axis, 1, y.shape[axis] - 1)
+    finite = y0[torch.isfinite(y0)].double()
+    scale = float(finite.square().mean().sqrt()) if finite.numel() else 1.0
+    d = torch.nan_to_num((rest - rest0).abs(), nan=float("inf"))
+    return bool(d.numel()) and float(d.max()) / (scale or 1.0) > tol
+
+
+def resolve_axes(fn: Callable[[torch.Tensor], Any], x: Any, model: nn.Module | None, seq_dim: int | None,
+                 batch_dim: int | None, pad_mask: torch.Tensor | None = None) -> Axes:
+    """Decide which axis of ``x`` holds positions, or refuse; never guess.
+
+    In order: ``seq_dim`` when given; a ``pad_mask`` ``(B, T)`` whose shape fits only one order of ``x``'s
+    first two axes; a *probing forward*: change index 0 along axis 0, then along axis 1, and see which
+    change stays in its own slice (the batch axis: items are independent) and which spreads (positions mix);
+    the layout of the model's torch attention layers (``batch_first`` of ``nn.MultiheadAttention`` and the
+    torch transformer layers, as :func:`attnscope.capture.discovery.map_model` reports them) when the
+    probing forward cannot tell; a batch of one on axis 0. Otherwise it raises an
+    :class:`~attnscope.errors.OptionError` naming the axes.
+
+    >>> import torch
+    >>> from torch import nn
+    >>> mha = nn.MultiheadAttention(8, 2)                       # batch_first=False: (T, B, D)
+    >>> resolve_axes(lambda h: mha(h, h, h)[0], torch.randn(6, 3, 8), mha, None, None)[:3]
+    (0, 1, 'a probing forward: items are independent along axis 1')
+    """
+    if seq_dim is not None:
+        return Axes(seq_dim, batch_dim, "given", 0)
+    if not isinstance(x, torch.Tensor) or x.dim() < 2:
+        return Axes(1, batch_dim, "default", 0)  # _dims refuses such an x with its own message
+    if batch_dim is not None:
+        seq = 1 if batch_dim % x.dim() == 0 else 0
+        return Axes(seq, batch_dim, f"the other of the first two axes than batch_dim={batch_dim}", 0)
+    d0, d1 = x.shape[0], x.shape[1]
+    if pad_mask is not None and d0 != d1:
+        shape = tuple(torch.as_tensor(pad_mask).shape)
+        if shape == (d0, d1):
+            return Axes(1, 0, "pad_mask (B, T) fits x's first two axes in this order", 0)
+        if shape == (d1, d0):
+            return Axes(0, 1, "pad_mask (B, T) fits x's first two axes swapped", 0)
+    root = model if model is not None else (fn if isinstance(fn, nn.Module) else None)
+    layout = _layer_layout(root)
+    kinds = set(layout.values())
+    forwards = 0
+    if d0 > 1 and d1 > 1:
+        try:
+            y0 = output_tensor(fn(x)).detach()
+            if y0.dim() >= 2 and (y0.shape[0] == 1 < d0 and y0.shape[1] == d1
+                                  or y0.shape[1] == 1 < d1 and y0.shape[0] == d0):
+                raise ShapeError(one_position_hint(tuple(y0.shape), max(d0, d1)))
+            m0, m1 = _mixes(fn, x, y0, 0, 1e-4), _mixes(fn, x, y0, 1, 1e-4)
+        except AttnscopeError:
+            raise
+        except Exception as err:
+            raise ProbeError(f"fn raised on x: {type(err).__name__}: {err}") from err
+        forwards = 3
+        if m0 is True and m1 is False:
+            return Axes(0, 1, "a probing forward: items are independent along axis 1", forwards)
+        if m0 is False and m1 is True:
+            return Axes(1, 0, "a probing forward: items are independent along axis 0", forwards)
+        if m0 is False and m1 is False and not kinds:
+            return Axes(1, 0, "default: a probing forward saw no dependence across either axis", forwards)
+        if m0 and m1:  # everything moved: rule out a callable that is not deterministic before refusing
+            again = output_tensor(fn(x)).detach()
+            forwards += 1
+            if again.shape != y0.shape or not torch.allclose(again, y0, rtol=0, atol=1e-6 * float(
+                    y0.double().abs().max().clamp_min(1e-30))):
+                raise ProbeError(
+                    f"{_subject(fn)} is not deterministic: running the same unperturbed input twice changed its "
+                    f"output, so changes cannot be told from leaks. Pass model= (the probe then evaluates it in "
+                    f"eval mode, without dropout) or make the callable deterministic (no sampling).")
+    if len(kinds) == 1:
+        first = kinds.pop()
+        how = "sequence-first (T, B)" if first else "batch-first (B, T)"
+        return Axes(0 if first else 1, 1 if first else 0, f"the model's attention layers are {how}", forwards)
+    if len(kinds) > 1:
+        listed = ", ".join(f"'{n}' ({'seq-first' if v else 'batch-first'})" for n, v in list(layout.items())[:6])
+        raise OptionError(
+            f"cannot tell which axis of x (shape {tuple(x.shape)}) holds positions: the model mixes "
+            f"sequence-first and batch-first attention layers ({listed}) and a probing forward could not "
+            f"tell; pass seq_dim=0 for (T, B, ...) inputs or seq_dim=1 for (B, T, ...)")
+    if d0 == 1:
+        return Axes(1, 0, "a batch of one on axis 0", forwards)
+    raise OptionError(
+        f"cannot tell which axis of x (shape {tuple(x.shape)}) holds positions: axis 0 ({d0}) or axis 1 "
+        f"({d1}); a probing forward found "
+        + ("no axis whose items stay independent" if forwards else "one of them of length 1")
+        + " and the model has no torch attention layer with a known layout; pass seq_dim=0 for (T, B, ...) "
+          "inputs or seq_dim=1 for (B, T, ...)")
+
+
 # -- the shared engine --------------------------------------------------------------------------------------
 
 
 class _Probe:
-    """One probe run: which inputs may change, which outputs are compared, and what was measured."""
+    """One probe run: which inputs may change, which outputs are compared, and what was measured.
+
+    The contract is one bool array ``forbidden`` ``(B, T, T)``: ``[b, i, j]`` True when output ``i`` of item
+    ``b`` must not depend on input ``j``. Causality, padding and any declared pattern are instances of it.
+    """
 
     def __init__(self, runner: Runner, allowed: torch.Tensor, observed: torch.Tensor, trials: int, tol: float,
-                 causal: bool) -> None:
-        self.runner, self.trials, self.tol, self.causal = runner, trials, tol, causal
+                 forbidden: torch.Tensor) -> None:
+        self.runner, self.trials, self.tol = runner, trials, tol
         self.allowed, self.observed = allowed, observed  # (B, T) bool: inputs perturbed, outputs compared
+        self.forbidden = forbidden & observed[:, :, None]  # (B, T, T)
         T = runner.T
         self.pos = torch.arange(T)
         self.dependency = np.full((T, T), np.nan)
+        self.breach = np.full((T, T), np.nan)  # like dependency, maxed only over items where the pair is forbidden
+        self.breach_item = np.zeros((T, T), dtype=np.int64)  # the item giving that maximum
         self.leak = np.zeros(T)  # largest change seen at each output position where it must not move
 
     def rows(self, masks: list[torch.Tensor]) -> np.ndarray:
@@ -328,11 +477,13 @@ class _Probe:
         return out.reshape(len(masks), self.trials, self.runner.B, self.runner.T)
 
     def must_hold(self, mask: torch.Tensor) -> np.ndarray:
-        """(B, T) bool: outputs that must not move when *mask* is perturbed."""
-        if self.causal:
-            first = int(self.pos[mask.any(0)].min()) if bool(mask.any()) else self.runner.T
-            return np.broadcast_to((self.pos < first).numpy(), mask.shape) & self.observed.numpy()
-        return self.observed.numpy()
+        """(B, T) bool: outputs that must not move when *mask* ``(B, T)`` is perturbed.
+
+        Output ``i`` of item ``b`` must hold when item ``b`` perturbs something and every input it perturbs
+        is forbidden to ``i``.
+        """
+        touches = (mask[:, None, :] & ~self.forbidden).any(-1)  # (B, T): a perturbed input is allowed to i
+        return (~touches & mask.any(1, keepdim=True) & self.observed).numpy()
 
     def note_blocks(self, masks: list[torch.Tensor], changes: np.ndarray) -> None:
         """Record leaks seen when blocks of inputs were perturbed together."""
@@ -348,10 +499,16 @@ class _Probe:
         masks = [self.allowed & (self.pos == j)[None] for j in js]
         changes = self.rows(masks)  # (J, trials, B, T)
         obs = self.observed.numpy()
+        bad = self.forbidden.numpy()  # (B, T, T)
         for j, mask, change in zip(js, masks, changes):
             valid = obs & mask.any(1).numpy()[:, None]  # (B, T): items where j was perturbed, outputs compared
-            col = np.where(valid[None], change, -np.inf).max(axis=(0, 1))
+            per_item = change.max(axis=0)  # (B, T)
+            col = np.where(valid, per_item, -np.inf).max(axis=0)
             self.dependency[:, j] = np.where(np.isneginf(col), np.nan, col)
+            hit = np.where(valid & bad[:, :, j], per_item, -np.inf)  # (B, T)
+            top = hit.max(axis=0)
+            self.breach[:, j] = np.where(np.isneginf(top), np.nan, top)
+            self.breach_item[:, j] = hit.argmax(axis=0)
         self.note_blocks(masks, changes)
 
     def violations(self) -> list[Violation]:
@@ -359,9 +516,7 @@ class _Probe:
         found = []
         for i in range(T):
             for j in range(T):
-                if self.causal and j <= i:
-                    continue
-                m = self.dependency[i, j]
+                m = self.breach[i, j]
                 if np.isfinite(m) and m > self.tol or m == np.inf:
                     found.append(Violation(i, j, float(m)))
         return found
@@ -389,7 +544,8 @@ class _Probe:
                 picks = span
             if hi is None and picks[-1] != n:
                 picks[-1] = n
-            masks = [self.allowed & torch.isin(self.pos, torch.tensor(candidates[:k]))[None] for k in picks]
+            masks = [self.allowed & self.forbidden[:, i] & torch.isin(self.pos, torch.tensor(candidates[:k]))[None]
+                     for k in picks]
             changes = self.rows(masks)[:, :, obs, i].reshape(len(picks), -1).max(axis=1)
             moved = [(k, float(c)) for k, c in zip(picks, changes) if c > self.tol]
             if moved:
@@ -508,7 +664,7 @@ def check_causal(
     fn: Callable[[torch.Tensor], Any],
     x: torch.Tensor,
     *,
-    seq_dim: int = 1,
+    seq_dim: int | None = None,
     mode: str = "screen",
     model: nn.Module | None = None,
     tol: float | None = None,
@@ -564,7 +720,10 @@ def check_causal(
             ``.last_hidden_state``, or a tuple whose first item is a tensor; the output's batch and
             sequence axes must sit where ``x``'s do. For a seq2seq decoder: ``lambda tgt: model(src, tgt)``.
         x: token ids ``(B, T)`` (any integer dtype) or float features ``(B, T, D)``.
-        seq_dim: axis of ``x`` (and of the output) holding positions.
+        seq_dim: axis of ``x`` (and of the output) holding positions; None (default) infers it and refuses
+            rather than guess (see :func:`resolve_axes`); the report states the axis and how it was chosen
+            (``report.seq_dim``, ``report.axis_source``). A probe on the wrong axis would perturb batch
+            items and could pass a leaky model.
         mode: ``"screen"`` or ``"exhaustive"``.
         model: the module behind ``fn``, for eval mode, the vocabulary and blame (defaults to ``fn`` when it
             is an ``nn.Module``).
@@ -593,18 +752,21 @@ def check_causal(
         OptionError: a bad option.
     """
     trials = _check_options("causal", mode, model, trials, tol, noise, rows_per_call)
-    seq_dim, batch_dim = _dims(x, seq_dim, batch_dim)
+    _dims(x, 1 if seq_dim is None else seq_dim, batch_dim)
     if grad_check and mode != "exhaustive":
         raise OptionError("grad_check=True needs mode='exhaustive'")
     root = model if model is not None else (fn if isinstance(fn, nn.Module) else None)
     modules = [m for m in (fn, model) if isinstance(m, nn.Module)]
     with _steady(modules, seed, x.device):
+        axes = resolve_axes(fn, x, model, seq_dim, batch_dim)
+        seq_dim, batch_dim = _dims(x, axes.seq_dim, axes.batch_dim)
         runner = Runner(fn, x, seq_dim=seq_dim, batch_dim=batch_dim, vocab_size=vocab_size, noise=noise,
                         seed=seed, rows_per_call=rows_per_call, max_bytes=max_bytes, model=root, observed=None)
         T, B = runner.T, runner.B
         tol = default_tolerance(runner.dtype) if tol is None else tol
         everything = torch.ones(B, T, dtype=torch.bool)
-        probe = _Probe(runner, everything, everything, trials, tol, causal=True)
+        later = torch.ones(T, T, dtype=torch.bool).triu(1).expand(B, T, T)  # (B, T, T): j > i is forbidden
+        probe = _Probe(runner, everything, everything, trials, tol, later)
         cuts = screen_splits(T, splits)
         blocks = [everything & (probe.pos > s)[None] for s in cuts]
         if mode == "exhaustive":
@@ -619,7 +781,8 @@ def check_causal(
             blame_observe=lambda i: torch.arange(i + 1),
             gradient=gradient,
         )
-    return report  # type: ignore[return-value]
+    return replace(report, seq_dim=seq_dim, batch_dim=batch_dim, axis_source=axes.source,  # type: ignore[return-value]
+                   forwards=report.forwards + axes.forwards, sequences=report.sequences + axes.forwards * B)
 
 
 def check_padding(
@@ -627,7 +790,7 @@ def check_padding(
     x: torch.Tensor,
     pad_mask: torch.Tensor,
     *,
-    seq_dim: int = 1,
+    seq_dim: int | None = None,
     mode: str = "screen",
     model: nn.Module | None = None,
     tol: float | None = None,
@@ -679,7 +842,10 @@ def check_padding(
         ProbeError: ``fn`` fails on ``x``, is not deterministic, or ids cannot be perturbed.
     """
     trials = _check_options("padding", mode, model, trials, tol, noise, rows_per_call)
-    seq_dim, batch_dim = _dims(x, seq_dim, batch_dim)
+    _dims(x, 1 if seq_dim is None else seq_dim, batch_dim)
+    with _steady([m for m in (fn, model) if isinstance(m, nn.Module)], seed, x.device):
+        axes = resolve_axes(fn, x, model, seq_dim, batch_dim, pad_mask=pad_mask)
+    seq_dim, batch_dim = _dims(x, axes.seq_dim, axes.batch_dim)
     B, T = x.shape[batch_dim], x.shape[seq_dim]
     pads = torch.as_tensor(pad_mask).detach().cpu()
     if tuple(pads.shape) != (B, T):
@@ -697,7 +863,7 @@ def check_padding(
         runner = Runner(fn, x, seq_dim=seq_dim, batch_dim=batch_dim, vocab_size=vocab_size, noise=noise,
                         seed=seed, rows_per_call=rows_per_call, max_bytes=max_bytes, model=root, observed=real)
         tol = default_tolerance(runner.dtype) if tol is None else tol
-        probe = _Probe(runner, pads, real, trials, tol, causal=False)
+        probe = _Probe(runner, pads, real, trials, tol, real[:, :, None] & pads[:, None, :])  # (B, T, T)
         padded = [int(j) for j in torch.nonzero(pads.any(0)).flatten()]
         if mode == "exhaustive":
             probe.columns(padded)
@@ -710,10 +876,11 @@ def check_padding(
             blame_mask=lambda i: pads,
             blame_observe=lambda i: common,
         )
-    return report  # type: ignore[return-value]
+    return replace(report, seq_dim=seq_dim, batch_dim=batch_dim, axis_source=axes.source,  # type: ignore[return-value]
+                   forwards=report.forwards + axes.forwards, sequences=report.sequences + axes.forwards * B)
 
 
-def assert_causal(fn: Callable[[torch.Tensor], Any], x: torch.Tensor, *, seq_dim: int = 1,
+def assert_causal(fn: Callable[[torch.Tensor], Any], x: torch.Tensor, *, seq_dim: int | None = None,
                   **options: Any) -> None:
     """Raise ``AssertionError`` naming the first violation, its magnitude and the blamed module, else None.
 
@@ -728,7 +895,7 @@ def assert_causal(fn: Callable[[torch.Tensor], Any], x: torch.Tensor, *, seq_dim
 
 
 def assert_padding(fn: Callable[[torch.Tensor], Any], x: torch.Tensor, pad_mask: torch.Tensor, *,
-                   seq_dim: int = 1, **options: Any) -> None:
+                   seq_dim: int | None = None, **options: Any) -> None:
     """Raise ``AssertionError`` naming the first real output moved by padding and by how much, else None.
 
     Takes the options of :func:`check_padding`.

@@ -25,7 +25,7 @@ from torch import nn
 
 from attnscope.errors import AttnscopeError, ProbeError, ShapeError
 
-__all__ = ["Runner", "default_tolerance", "output_tensor"]
+__all__ = ["Runner", "default_tolerance", "one_position_hint", "output_tensor"]
 
 # Relative change below which two outputs count as equal. float32 sums over a few thousand terms in a
 # different order differ by ~1e-6 of their scale; 1e-4 leaves a wide margin, yet any leak that carries
@@ -56,6 +56,14 @@ def output_tensor(out: Any, what: str = "fn") -> torch.Tensor:
         f"expected {what} to return a tensor, an object with .logits or .last_hidden_state, or a tuple "
         f"whose first item is a tensor; it returned {type(out).__name__}"
     )
+
+
+def one_position_hint(shape: tuple[int, ...], T: int) -> str:
+    """The message for a callable that returns only the last position, with a one-line fix."""
+    return (f"fn returned one position only (shape {shape}) for an input of T={T} positions; the probe needs "
+            f"the output at every position. Pass a callable that returns them all, e.g. "
+            f"check_causal(lambda ids: model(ids, targets=ids)[0], ids) for a model that keeps every position "
+            f"only when given targets")
 
 
 class Runner:
@@ -137,6 +145,9 @@ class Runner:
         except Exception as err:
             raise ProbeError(f"fn raised on {what}: {type(err).__name__}: {err}") from err
         out = output_tensor(raw)
+        if out.dim() > max(self.seq_dim, self.batch_dim) and out.shape[self.seq_dim] == 1 < self.T \
+                and out.shape[self.batch_dim] == n:
+            raise ShapeError(one_position_hint(tuple(out.shape), self.T))
         if out.dim() <= max(self.seq_dim, self.batch_dim) or out.shape[self.seq_dim] != self.T \
                 or out.shape[self.batch_dim] != n:
             raise ShapeError(
