@@ -159,3 +159,34 @@ def test_statistics_in_pieces_keep_each_items_batch_index(monkeypatch):
     # reference: the same statistics computed from the full maps (keep="maps") and from one item at a time
     for column in ("entropy", "sink_mass"):
         np.testing.assert_allclose(a[column], b[column], rtol=1e-5, atol=1e-6)
+
+
+@pytest.mark.slow
+def test_check_mask_takes_the_flex_models_own_mask_mod():
+    from attnscope.analyses.contracts import check_mask
+    from attnscope.analyses.patterns import window_pattern
+
+    torch.manual_seed(0)
+    ids = torch.randint(0, 16, (1, 16))
+    docs = torch.tensor([[0] * 6 + [1] * 5 + [2] * 5])
+    fixed, leaky = (FlexDecoder(FlexDecoderConfig(pattern=p)).eval() for p in ("documents", "causal"))
+    contract = fixed.mask_mod(docs)  # the predicate the fixed model hands to create_block_mask
+
+    def run(model):
+        return lambda t: model(t, docs.expand(t.size(0), -1))  # perturbed copies are stacked along the batch
+
+    assert check_mask(run(fixed), ids, contract, model=fixed).ok
+    report = check_mask(run(leaky), ids, contract, model=leaky, mode="exhaustive")
+    assert not report.ok
+    # reference: hand derivation from the causal-only mask_mod: output i reads every j <= i, so every pair
+    # (i, j) with j < i in another document is a violation, and only those
+    expected = {(i, j) for i in range(16) for j in range(i) if docs[0, i] != docs[0, j]}
+    assert {(v.output_pos, v.input_pos) for v in report.violations} == expected
+    assert report.blame == "blocks.0.attn"
+
+    one_layer = dict(pattern="window", window=4, layers=1)
+    right = FlexDecoder(FlexDecoderConfig(**one_layer)).eval()
+    off = FlexDecoder(FlexDecoderConfig(**one_layer, window_off_by_one=True)).eval()
+    assert check_mask(lambda t: right(t), ids, right.mask_mod(None), model=right).ok
+    report = check_mask(lambda t: off(t), ids, window_pattern(16, 4), model=off)
+    assert not report.ok and (report.window_declared, report.window_used) == (4, 5)  # the planted q - kv <= 4
