@@ -188,6 +188,11 @@ def check_verify_masks_and_cache(out: str, cells: list) -> None:
     leak = float(grab(r"packed_causal: later lists' logits move by ([\d.e+-]+) x the logit scale", out)[1])
     assert leak > 1e-2
     assert float(grab(r"packed_docs: later lists' logits move by ([\d.e+-]+) x the logit scale", out)[1]) < 1e-5
+    # the same, by check_mask against the documents mask_mod: the first layer's attention is where lists meet
+    first = grab(r"check_mask packed_causal: ok=False; first violation \(output, input\)=\((\d+), (\d+)\); "
+                 r"blame='blocks.0.attn'", out)
+    assert int(first[2]) < int(first[1])
+    grab(r"check_mask packed_docs: ok=True; first violation \(output, input\)=None", out)
     worst = grab(r"packed_causal: largest mean weight outside the documents pattern ([\d.]+); worst cell \S+ head "
                  r"\d+: query (\d+) \(list (\d+)\) on key (\d+) \(list (\d+)\)", out)
     assert float(worst[1]) > 1e-2 and worst[3] != worst[5] and int(worst[4]) < int(worst[2])  # across lists, earlier
@@ -200,7 +205,11 @@ def check_verify_masks_and_cache(out: str, cells: list) -> None:
     # against FlexAttention's create_mask), so the two tables agree
     grab(rf"window_off_by_one against window_pattern\(24, 4\): largest mean weight outside {by_mod[1]}\n", out)
     grab(r"window_fixed: declared 4 keys, uses 4; largest mean weight outside the window 0\n", out)
-    assert shows_dashboard(cells[5]), "the window section should display the dashboard with the declared veil"
+    # reference: hand derivation: two layers of w keys reach 2(w - 1) + 1 positions: declared 7 (w = 4); the
+    # off-by-one layers have 5 keys, so 9; one layer alone reaches 5 <= 7, so the second layer is blamed
+    grab(r"check_mask window_off_by_one: ok=False; declared window 7, uses 9; blame='blocks.1.attn'", out)
+    grab(r"check_mask window_fixed: ok=True; declared window 7, uses 7; blame=None", out)
+    assert shows_dashboard(cells[7]), "the window section should display the dashboard with the declared veil"
     # reference: hand derivation: without a mask once a cache exists, single-token steps see no future (agree),
     # the uneven schedule's chunk 1 (positions 1..3) after 1 cached token lets position 1 see 2 and 3
     grab(r"schedule 'one at a time' \(1(, 1)+\): first difference at None, blame=None", out)
