@@ -55,6 +55,9 @@ _LAZY = {
     "pattern_from_predicate": "attnscope.analyses.patterns",
     "prefix_pattern": "attnscope.analyses.patterns",
     "window_pattern": "attnscope.analyses.patterns",
+    "CacheReport": "attnscope.analyses.cache",
+    "assert_cache": "attnscope.analyses.cache",
+    "check_cache": "attnscope.analyses.cache",
     # heads
     "dead_heads": "attnscope.analyses.heads",
     "duplicate_heads": "attnscope.analyses.heads",
@@ -63,6 +66,7 @@ _LAZY = {
     "head_distances": "attnscope.analyses.similarity",
     "leak_summary": "attnscope.analyses.leaks",
     "leak_table": "attnscope.analyses.leaks",
+    "pattern_table": "attnscope.analyses.leaks",
     "ablate": "attnscope.analyses.ablation",
     "head_importance": "attnscope.analyses.ablation",
     "attention_rollout": "attnscope.analyses.rollout",

@@ -7,6 +7,7 @@
     attnscope check-causal TARGET [--mode exhaustive]
     attnscope check-padding TARGET
     attnscope check-mask TARGET [--window W --layers L | --prefix N] [--mode exhaustive]
+    attnscope check-cache TARGET
 
 TARGET is ``package.module:factory``, a callable returning one of:
 
@@ -16,7 +17,9 @@ TARGET is ``package.module:factory``, a callable returning one of:
   for a seq2seq decoder), ``model`` the module whose submodules are blamed; for check-padding
   ``(fn, x, pad_mask)`` or ``(fn, x, pad_mask, model)``; for check-mask ``(fn, x, allowed)`` or
   ``(fn, x, allowed, model)`` (``allowed`` a bool ``(T, T)`` / ``(B, T, T)`` tensor or a
-  ``(b, h, q_idx, kv_idx)`` predicate), or what check-causal takes plus ``--window`` or ``--prefix``.
+  ``(b, h, q_idx, kv_idx)`` predicate), or what check-causal takes plus ``--window`` or ``--prefix``; for
+  check-cache an HF-style model, ``(model, ids)``, or ``(step, ids, full)`` / ``(step, ids, full, model)`` for a
+  hand-written cached decoder.
 
 Exit codes: 0 success, 1 a check failed, 2 bad usage or an attnscope error (message on stderr).
 """
@@ -179,6 +182,25 @@ def cmd_check_mask(a: argparse.Namespace) -> int:
     return EXIT_OK if report.ok else EXIT_CHECK_FAILED
 
 
+def cmd_check_cache(a: argparse.Namespace) -> int:
+    from attnscope.analyses.cache import check_cache
+
+    target = load_target(a.target)
+    if isinstance(target, nn.Module) or (isinstance(target, tuple) and len(target) == 2):
+        model, (ids, *_) = model_and_inputs(target, a.batch, a.seq, a.seed)
+        step, full = model, None
+    elif isinstance(target, tuple) and len(target) in (3, 4) and callable(target[0]):
+        step, ids, full = target[:3]
+        model = target[3] if len(target) == 4 else None
+    else:
+        raise OptionError("TARGET must give an HF-style model, (model, ids), (step, ids, full) or "
+                          f"(step, ids, full, model); it gave {type(target).__name__}")
+    options = {"seq_dim": a.seq_dim} if a.tol is None else {"seq_dim": a.seq_dim, "tol": a.tol}
+    report = check_cache(step, ids, full=full, model=model, **options)
+    print(report.summary())
+    return EXIT_OK if report.ok else EXIT_CHECK_FAILED
+
+
 def cmd_table(a: argparse.Namespace) -> int:
     cap, _ = _capture_target(a, a.keep)
     table = cap.head_table()
@@ -286,6 +308,17 @@ def parser() -> argparse.ArgumentParser:
         c.add_argument("--vocab", type=int, help="vocabulary size for token-id inputs (default: from the model)")
         _inputs_options(c)
         c.set_defaults(run=run)
+
+    k = sub.add_parser("check-cache", help="cached decoding gives the full forward's outputs; exit 1 when not",
+                       description="Decode TARGET's ids chunk by chunk with its key/value cache under several chunk "
+                                   "schedules and compare every position with one full forward. Exit 0 when they "
+                                   "agree, 1 when not (with the first position, the size and the module blamed).")
+    k.add_argument("target", help="package.module:factory giving an HF-style model, (model, ids), "
+                                  "(step, ids, full) or (step, ids, full, model)")
+    k.add_argument("--seq-dim", type=int, default=1, help="axis of the output that lines up with the positions")
+    k.add_argument("--tol", type=float, help="difference counted as disagreement, relative to the output scale")
+    _inputs_options(k)
+    k.set_defaults(run=cmd_check_cache)
     return p
 
 

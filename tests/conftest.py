@@ -37,6 +37,10 @@ def world_restored():
         problems.append("grad mode not restored")
     if session._active:
         problems.append(f"captures still registered as open: {session._active}")
+    from attnscope.capture.paths import flex
+
+    if flex._held or flex._recorders:
+        problems.append(f"FlexAttention wrapper still held in {len(flex._held)} place(s)")
     leftover = _our_hooks()
     if leftover:
         problems.append("hooks left on modules: " + "; ".join(leftover[:5]))

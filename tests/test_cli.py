@@ -143,7 +143,7 @@ def test_demo_reports_the_planted_findings(tmp_path, capsys):
 def test_every_command_has_help(capsys):
     import pytest
 
-    for cmd in ("demo", "table", "show", "page", "check-causal", "check-padding"):
+    for cmd in ("demo", "table", "show", "page", "check-causal", "check-padding", "check-cache"):
         with pytest.raises(SystemExit) as stop:
             main([cmd, "--help"])
         assert stop.value.code == 0

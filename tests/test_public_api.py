@@ -14,6 +14,7 @@ EXPECTED = [
     "MaskReport", "assert_mask", "causal_pattern", "check_mask", "documents_pattern", "pattern_from_predicate",
     "prefix_pattern", "window_pattern",
 ]
+EXPECTED += ["CacheReport", "assert_cache", "check_cache", "pattern_table"]  # mask contracts
 
 
 def test_all_is_sorted_and_locked():

@@ -8,6 +8,9 @@ Two kinds of misplaced weight:
 * **future mass**: for calls *declared* causal, weight on keys after the query, ``j > i + query_offset``
   (the offset places query ``i`` of a key/value-cache step at its absolute position). This catches the mask
   that was never built or is off by one, which the recorded mask cannot show, since it is wrong itself.
+* **outside mass** (:func:`pattern_table`): the same for any declared pattern, a sliding window, packed
+  documents, a prefix: weight on keys the pattern forbids, given as a bool ``(T, T)`` / ``(B, T, T)`` array or a
+  FlexAttention-style ``mask_mod(b, h, q_idx, kv_idx)``. Causal is the special case ``kv_idx <= q_idx``.
 
 Weights only show leaks through attention; leaks through convolutions, norms or pooling along the sequence
 need the behavioural probe (:mod:`attnscope.analyses.causality`).
@@ -34,11 +37,15 @@ from attnscope.errors import OptionError
 from attnscope.names import select_by_name
 from attnscope.records import AttentionRecord
 
-__all__ = ["Causal", "declared_causal", "leak_summary", "leak_table"]
+__all__ = ["Causal", "Pattern", "declared_causal", "declared_cells", "leak_summary", "leak_table", "pattern_table"]
 
 #: What the user declares causal: True (every self-attention call), None (calls recorded as causal),
 #: module-name patterns (self-attention calls of matching modules) or a predicate on the record.
 Causal = bool | str | Sequence[str] | Callable[[AttentionRecord], bool] | None
+
+#: A declared attention pattern: bool ``(T, T)`` or ``(B, T, T)`` (True: query i may see key j, absolute
+#: positions), or a predicate ``mask_mod(b, h, q_idx, kv_idx) -> bool`` in torch FlexAttention's convention.
+Pattern = Any
 
 #: Weight below this counts as numerical noise, not a leak.
 DEFAULT_TOLERANCE = 1e-6
@@ -74,6 +81,57 @@ def _future(rec: AttentionRecord) -> np.ndarray:
     q = np.arange(rec.queries)[:, None] + rec.query_offset
     k = np.arange(rec.keys)[None, :]
     return k > q
+
+
+def declared_cells(rec: AttentionRecord, allowed: Pattern) -> np.ndarray:
+    """``(B, Tq, Tk)`` bool: the cells of *rec* a declared pattern lets through, at absolute query positions.
+
+    >>> import numpy as np, torch, attnscope
+    >>> mha = torch.nn.MultiheadAttention(8, 2, batch_first=True)
+    >>> x = torch.randn(1, 4, 8)
+    >>> with attnscope.capture(mha) as cap:
+    ...     _ = mha(x, x, x)
+    >>> declared_cells(cap.attention[0], lambda b, h, q, kv: (q - kv >= 0) & (q - kv < 2))[0].astype(int).tolist()
+    [[1, 0, 0, 0], [1, 1, 0, 0], [0, 1, 1, 0], [0, 0, 1, 1]]
+
+    An array is indexed at ``[query_offset : query_offset + Tq, :Tk]`` (a cache step's queries sit at their
+    absolute positions). A predicate is called once on broadcast index tensors ``b (B,1,1)``, ``h`` (0),
+    ``q_idx (1,Tq,1)``, ``kv_idx (1,1,Tk)``; if it cannot take tensors of that shape it is evaluated cell by
+    cell through ``torch.vmap``, as FlexAttention does.
+    """
+    B, Tq, Tk, off = rec.batch, rec.queries, rec.keys, rec.query_offset
+    if callable(allowed):
+        return _evaluate_mask_mod(allowed, B, Tq, Tk, off)
+    cells = np.asarray(allowed.detach().cpu() if hasattr(allowed, "detach") else allowed)
+    if cells.dtype != bool or cells.ndim not in (2, 3):
+        raise OptionError(f"expected the pattern as a bool (T, T) or (B, T, T) array or a mask_mod predicate; "
+                          f"received {cells.dtype} of shape {cells.shape}")
+    if cells.ndim == 3 and cells.shape[0] not in (1, B):
+        raise OptionError(f"expected a (B, T, T) pattern with B={B} for {rec.name!r}; received shape {cells.shape}")
+    if cells.shape[-2] < off + Tq or cells.shape[-1] < Tk:
+        raise OptionError(f"the pattern of shape {cells.shape} is smaller than {rec.name!r}'s attention "
+                          f"(queries {off}..{off + Tq - 1}, {Tk} keys)")
+    cells = cells[..., off:off + Tq, :Tk]
+    return np.broadcast_to(cells if cells.ndim == 3 else cells[None], (B, Tq, Tk))
+
+
+def _evaluate_mask_mod(mask_mod: Callable[..., Any], B: int, Tq: int, Tk: int, off: int) -> np.ndarray:
+    import torch
+
+    b = torch.arange(B).view(B, 1, 1)
+    h = torch.zeros((), dtype=torch.long)
+    q = torch.arange(off, off + Tq).view(1, Tq, 1)
+    kv = torch.arange(Tk).view(1, 1, Tk)
+    try:
+        out = torch.as_tensor(mask_mod(b, h, q, kv))
+        return np.ascontiguousarray(torch.broadcast_to(out.bool(), (B, Tq, Tk)).numpy())
+    except Exception:  # a predicate written for scalars: evaluate it cell by cell, as FlexAttention does
+        pass
+    fn = torch.vmap(lambda bi, qi, ki: mask_mod(bi, h, qi, ki), in_dims=(None, None, 0))
+    fn = torch.vmap(fn, in_dims=(None, 0, None))
+    fn = torch.vmap(fn, in_dims=(0, None, None))
+    out = fn(torch.arange(B), torch.arange(off, off + Tq), torch.arange(Tk))
+    return np.ascontiguousarray(torch.as_tensor(out).bool().numpy())
 
 
 def _counted(rec: AttentionRecord, w: np.ndarray) -> np.ndarray:
@@ -185,3 +243,55 @@ def leak_summary(cap: Any, *, causal: Causal = None, tolerance: float = DEFAULT_
     return pd.DataFrame(rows, columns=["name", "call", "kind", "source", "recorded_causal", "declared_causal",
                                        "leak_mass", "future_mass", "max_leak", "max_future", "leaks",
                                        "worst_item", "worst_head", "worst_query", "worst_key"])
+
+
+def pattern_table(cap: Any, allowed: Pattern, *, where: Causal = True) -> pd.DataFrame:
+    """Per (record, head): attention weight that lands outside a declared pattern.
+
+    >>> import torch, attnscope
+    >>> mha = torch.nn.MultiheadAttention(8, 2, batch_first=True)
+    >>> x = torch.randn(1, 6, 8)
+    >>> window = lambda b, h, q, kv: (q >= kv) & (q - kv < 3)       # query + the 2 keys before it
+    >>> with attnscope.capture(mha) as cap:
+    ...     _ = mha(x, x, x, attn_mask=torch.ones(6, 6, dtype=torch.bool).triu(1))   # causal, no window
+    >>> t = pattern_table(cap, window)
+    >>> bool((t["outside_mass"] > 0.05).all()), bool(t.loc[0, "worst_key"] < t.loc[0, "worst_query"] - 2)
+    (True, True)
+
+    Args:
+        cap: a capture or a list of records.
+        allowed: the pattern each record is held to (see :data:`Pattern` and :func:`declared_cells`).
+        where: which records to hold to it, as ``causal=`` of :func:`declared_causal` (default: every
+            self-attention record; cross-attention sees another sequence).
+
+    Returns:
+        DataFrame, one row per (held record, kept head): ``name``, ``call``, ``kind``, ``head``,
+        ``outside_mass`` (mean weight per counted row on keys the pattern forbids), ``max_outside`` (the
+        largest single such weight), and the worst cell's ``worst_item``, ``worst_query`` (absolute) and
+        ``worst_key`` (-1 when nothing lands outside). NaN and -1 for records kept as statistics only.
+    """
+    records = _records(cap)
+    rows = []
+    for rec, held in zip(records, declared_causal(records, where)):
+        if not held:
+            continue
+        outside = mass = None
+        if rec.weights is not None:
+            w = np.nan_to_num(rec.weights.astype(np.float64))  # (B, H, Tq, Tk)
+            counted = _counted(rec, rec.weights)  # (B, H, Tq)
+            outside = np.where(~declared_cells(rec, allowed)[:, None], w, 0.0) * counted[..., None]  # (B, H, Tq, Tk)
+            with np.errstate(invalid="ignore"):
+                mass = outside.sum(axis=-1).sum(axis=(0, 2)) / counted.sum(axis=(0, 2))  # (H,)
+        for i, head in enumerate(rec.heads):
+            row = {"name": rec.name, "call": rec.call, "kind": rec.kind, "head": head, "outside_mass": np.nan,
+                   "max_outside": np.nan, "worst_item": -1, "worst_query": -1, "worst_key": -1}
+            if outside is not None:
+                cells = outside[:, i]  # (B, Tq, Tk)
+                b, q, k = np.unravel_index(int(np.argmax(cells)), cells.shape)
+                top = float(cells[b, q, k])
+                row.update(outside_mass=float(mass[i]), max_outside=top)
+                if top > DEFAULT_TOLERANCE:
+                    row.update(worst_item=int(b), worst_query=int(q) + rec.query_offset, worst_key=int(k))
+            rows.append(row)
+    return pd.DataFrame(rows, columns=["name", "call", "kind", "head", "outside_mass", "max_outside", "worst_item",
+                                       "worst_query", "worst_key"])

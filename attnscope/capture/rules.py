@@ -14,8 +14,9 @@ rule                                     why
 class name says attention                HF and most hand-written code name their blocks ``...Attention``/``...Attn...``
 (``attention``/``attn``, any case)
 ``forward`` source calls                 hand-written blocks of any name that compute attention themselves
-``scaled_dot_product_attention`` or
-``tap(``, or calls ``softmax(`` and
+``scaled_dot_product_attention``,
+``flex_attention(`` or ``tap(``, or
+calls ``softmax(`` and
 multiplies two tensors (``@``,           a softmax with no product of activations is a router or a classifier
 ``matmul``, ``bmm``, ``einsum``)         (mixture-of-experts gates over experts); ``log_softmax(`` never counts
 containers never count                   ``nn.ModuleList``/``nn.ModuleDict``/``nn.Sequential`` hold blocks, never compute
@@ -48,6 +49,7 @@ path                                     seen as
                                          ``(B·H, Tq, Tk)`` tensor (``bmm`` style; heads recovered from the module's
                                          head count) while an attention module owns the call; never ``log_softmax``
 ``tap``                                  :func:`attnscope.tap` called by the user's own code
+``flex``                                 ``flex_attention``, weights recomputed from q, k, score_mod, block mask
 =======================================  ==========================================================================
 
 Self or cross (per call, first rule that applies; :func:`kind_hint`)
@@ -97,7 +99,7 @@ from attnscope.names import within
 __all__ = ["CONTAINERS", "NN_LAYERS", "head_count", "is_attention_module", "kind_hint", "module_label", "owners"]
 
 _ATTN_CLASS = re.compile(r"attention|attn", re.IGNORECASE)
-_ATTN_SOURCE = re.compile(r"scaled_dot_product_attention|\btap\(")
+_ATTN_SOURCE = re.compile(r"scaled_dot_product_attention|flex_attention\(|\btap\(")
 _SOFTMAX_SOURCE = re.compile(r"(?<!log_)softmax\(")
 # a product of two activations: binary @ (not a decorator), matmul, bmm, baddbmm, einsum
 _PRODUCT_SOURCE = re.compile(r"[\w)\]]\s*@\s*[\w(]|\bmatmul\(|\bbmm\(|baddbmm\(|\beinsum\(")

@@ -24,6 +24,7 @@ from torch.overrides import TorchFunctionMode
 
 from attnscope.capture.discovery import ModelMap, map_model
 from attnscope.capture.paths import PATHS
+from attnscope.capture.paths import flex as flex_path
 from attnscope.capture.paths import tap as tap_path
 from attnscope.capture.paths.softmax import FUNCS as _SOFTMAX_FUNCS
 from attnscope.capture.recorder import Recorder
@@ -177,6 +178,7 @@ class Capture:
         self.residual = self._rec.residual
         self._state = "new"
         self._handles: list[Any] = []
+        self._flex_held: list[Any] = []  # where the FlexAttention wrapper stands in (see capture.paths.flex)
         self._mode: RoutingMode | None = None
         self._fastpath = False  # whether this capture holds the fast-path switch off
         self._table: Any = None
@@ -265,6 +267,7 @@ class Capture:
             self._mode = RoutingMode({f: functools.partial(path.on_call, self._rec)
                                       for path in PATHS for f in path.FUNCS})
             self._mode.__enter__()
+            self._flex_held = flex_path.hold(self._rec, self._model.modules())
             with _active_lock:
                 _active.append(self)
         except BaseException:
@@ -288,6 +291,7 @@ class Capture:
                 mode, self._mode = self._mode, None
                 remove_mode(mode)
         finally:
+            flex_path.release(self._rec, self._flex_held)
             for h in self._handles:
                 h.remove()
             self._handles.clear()

@@ -278,7 +278,7 @@ class Dashboard(W.VBox):
 
 def dashboard(cap: Any, tokens: Any = None, *, ids: Any = None, findings: Any = None, checks: Any = None,
               distances: Any = None, statistic: str = "entropy_ratio", item: int = 0, head: int | None = None,
-              tile: int = 24, lens_side: int = 512, bokehjs: str = "always") -> Dashboard:
+              tile: int = 24, lens_side: int = 512, bokehjs: str = "always", pattern: Any = None) -> Dashboard:
     """An interactive notebook view of a capture: every head, the selected head's map, statistics, residual norms.
 
     >>> import torch, attnscope
@@ -306,6 +306,8 @@ def dashboard(cap: Any, tokens: Any = None, *, ids: Any = None, findings: Any = 
         lens_side: the selected head's map is pooled past this many positions (AttnscopeWarning).
         bokehjs: ``"always"`` publishes the inline BokehJS loader with each display (skipped in the page when
             already loaded); ``"never"`` leaves loading BokehJS to you.
+        pattern: a declared attention pattern (bool ``(T, T)`` / ``(B, T, T)`` or a FlexAttention-style
+            ``mask_mod``) the mask veil shows on self-attention maps instead of the mask each call applied.
 
     Returns:
         A :class:`Dashboard` (an ``ipywidgets.VBox``).
@@ -315,7 +317,7 @@ def dashboard(cap: Any, tokens: Any = None, *, ids: Any = None, findings: Any = 
 
         return run_dashboard(cap, statistic=statistic, head=head or 0, bokehjs=bokehjs)
     scene = Scene(cap, tokens, ids=ids, findings=findings, checks=checks, distances=distances,
-                  statistic=statistic, tile=tile, lens_side=lens_side)
+                  statistic=statistic, tile=tile, lens_side=lens_side, pattern=pattern)
     if item:
         scene.set_item(item)
     if head is not None:

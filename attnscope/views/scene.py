@@ -55,6 +55,7 @@ from bokeh.models import (
 from bokeh.palettes import Cividis256, Colorblind8, Inferno256, Magma256, Plasma256
 from bokeh.plotting import figure
 
+from attnscope.analyses.leaks import declared_cells
 from attnscope.errors import AttnscopeWarning, OptionError, ShapeError, suggest
 from attnscope.records import STAT_COLUMNS
 from attnscope.views.findings import as_frame, as_tables, html_table
@@ -164,11 +165,14 @@ class Scene:
         statistic: the statistic shown first in scores.
         tile: side of an overview tile in cells; reduced (with an AttnscopeWarning) for very many heads.
         lens_side: the selected map is pooled to at most this many cells a side (AttnscopeWarning).
+        pattern: a declared attention pattern (see :func:`attnscope.analyses.leaks.declared_cells`) the veil shows
+            on self-attention maps instead of the mask the call applied; ``None``: the applied mask.
     """
 
     def __init__(self, cap: Any, tokens: Any = None, *, ids: Any = None, findings: Any = None, checks: Any = None,
                  distances: Any = None, statistic: str = "entropy_ratio", tile: int = 24,
-                 lens_side: int = 512) -> None:
+                 lens_side: int = 512, pattern: Any = None) -> None:
+        self.pattern = pattern
         self.records = list(cap.attention)
         self.blocks = list(getattr(cap, "residual", []) or [])
         if not self.records:
@@ -479,7 +483,11 @@ class Scene:
                         tq=tq, tk=tk, q=q, k=k, top=1.0,
                         title=f"{h.label}: statistics only (capture with keep='maps' to see the map)")
         w = rec.weights[item, h.slot]  # (Tq, Tk)
-        allowed = None if rec.allowed is None else np.asarray(rec.allowed_full()[item, h.slot])
+        declared = self.pattern is not None and rec.kind == "self"
+        if declared:  # the veil shows the user's declared pattern: grey where it forbids, magenta where weight lands
+            allowed = declared_cells(rec, self.pattern)[item]
+        else:
+            allowed = None if rec.allowed is None else np.asarray(rec.allowed_full()[item, h.slot])
         veil = mask_codes(w, allowed)
         pooled = max(tq, tk) > self.lens_side
         if pooled:
@@ -489,6 +497,9 @@ class Scene:
         top = float(finite.max()) if finite.size and finite.max() > 0 else 1.0
         mask_note = "no mask applied" if rec.allowed is None else (
             f"leak {stat.get('leak_mass', float('nan')):.3g}" + (", causal" if rec.causal else ""))
+        if declared:
+            outside = float(np.where(allowed, 0.0, np.nan_to_num(rec.weights[item, h.slot])).sum(-1).mean())
+            mask_note += f" · veil: declared pattern, outside {outside:.3g}"
         title = (f"{h.label} · item {item} · {rec.kind} · {mask_note}"
                  + (f" · pooled to {w.shape[0]}x{w.shape[1]}" if pooled else ""))
         return dict(image=np.ascontiguousarray(w, dtype=np.float32), veil=veil, tq=tq, tk=tk, q=q, k=k, top=top,

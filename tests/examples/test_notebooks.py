@@ -70,7 +70,8 @@ def shows_dashboard(cell) -> bool:
 # ------------------------------------------------------------------------------------ stored notebooks
 def test_one_notebook_per_story():
     assert set(_names()) == {"debug_seq2seq.ipynb", "verify_causal_masking.ipynb",
-                             "dead_and_duplicate_heads.ipynb", "your_own_model.ipynb", "watch_training.ipynb"}
+                             "dead_and_duplicate_heads.ipynb", "your_own_model.ipynb", "watch_training.ipynb",
+                             "verify_masks_and_cache.ipynb"}
 
 
 def test_index_lists_every_notebook():
@@ -196,12 +197,50 @@ def check_watch_training(out: str, cells: list) -> None:
     assert shows_dashboard(cells[-1]), "the last cell should display the run's view"
 
 
+def check_verify_masks_and_cache(out: str, cells: list) -> None:
+    # reference: hand derivation from the mask_mods in attnscope/demo/flex_decoder.py: a documents mask forbids
+    # every key of another list, so later lists cannot depend on list 0; a causal-only mask lets them
+    leak = float(grab(r"packed_causal: later lists' logits move by ([\d.e+-]+) x the logit scale", out)[1])
+    assert leak > 1e-2
+    assert float(grab(r"packed_docs: later lists' logits move by ([\d.e+-]+) x the logit scale", out)[1]) < 1e-5
+    # the same, by check_mask against the documents mask_mod: the first layer's attention is where lists meet
+    first = grab(r"check_mask packed_causal: ok=False; first violation \(output, input\)=\((\d+), (\d+)\); "
+                 r"blame='blocks.0.attn'", out)
+    assert int(first[2]) < int(first[1])
+    grab(r"check_mask packed_docs: ok=True; first violation \(output, input\)=None", out)
+    worst = grab(r"packed_causal: largest mean weight outside the documents pattern ([\d.]+); worst cell \S+ head "
+                 r"\d+: query (\d+) \(list (\d+)\) on key (\d+) \(list (\d+)\)", out)
+    assert float(worst[1]) > 1e-2 and worst[3] != worst[5] and int(worst[4]) < int(worst[2])  # across lists, earlier
+    # reference: a masked softmax puts exactly zero weight on a masked key (common practice, no source)
+    grab(r"packed_docs: largest mean weight outside the documents pattern 0\n", out)
+    # reference: the planted bug q - kv <= window lets window + 1 keys in (hand derivation)
+    by_mod = grab(r"window_off_by_one: declared 4 keys, uses 5; largest mean weight outside the window ([\d.]+)", out)
+    assert float(by_mod[1]) > 1e-2
+    # reference: the pattern builder and the predicate state the same window (test_patterns checks both
+    # against FlexAttention's create_mask), so the two tables agree
+    grab(rf"window_off_by_one against window_pattern\(24, 4\): largest mean weight outside {by_mod[1]}\n", out)
+    grab(r"window_fixed: declared 4 keys, uses 4; largest mean weight outside the window 0\n", out)
+    # reference: hand derivation: two layers of w keys reach 2(w - 1) + 1 positions: declared 7 (w = 4); the
+    # off-by-one layers have 5 keys, so 9; one layer alone reaches 5 <= 7, so the second layer is blamed
+    grab(r"check_mask window_off_by_one: ok=False; declared window 7, uses 9; blame='blocks.1.attn'", out)
+    grab(r"check_mask window_fixed: ok=True; declared window 7, uses 7; blame=None", out)
+    assert shows_dashboard(cells[7]), "the window section should display the dashboard with the declared veil"
+    # reference: hand derivation: without a mask once a cache exists, single-token steps see no future (agree),
+    # the uneven schedule's chunk 1 (positions 1..3) after 1 cached token lets position 1 see 2 and 3
+    grab(r"schedule 'one at a time' \(1(, 1)+\): first difference at None, blame=None", out)
+    grab(r"schedule 'prefill then one at a time' \(7(, 1)+\): first difference at None", out)
+    grab(r"schedule 'uneven chunks' \(1, 3, 2, 4, 1, 3\): first difference at 1, blame='blocks.0.attn'", out)
+    diff = float(grab(r"fixed cache: ok=True; largest difference ([\d.e+-]+) x the output scale", out)[1])
+    assert diff < 1e-5  # float32 paths agree to ~1e-6 (common practice, no source)
+
+
 CHECKS = {
     "debug_seq2seq.ipynb": check_debug_seq2seq,
     "verify_causal_masking.ipynb": check_verify_causal_masking,
     "dead_and_duplicate_heads.ipynb": check_dead_and_duplicate_heads,
     "your_own_model.ipynb": check_your_own_model,
     "watch_training.ipynb": check_watch_training,
+    "verify_masks_and_cache.ipynb": check_verify_masks_and_cache,
 }
 
 

@@ -7,6 +7,8 @@ dropdown, and the widget is photographed in Debian Chromium:
 * ``story_causal.png`` — the decoder trained with an off-by-one mask: the lens shows weight just above the
   diagonal, and the checks table holds the behavioural probe's report;
 * ``story_heads.png`` — the heads specimen with its dead and duplicate head findings, the uniform head selected.
+* ``story_masks.png`` — a FlexAttention decoder whose window is off by one, the veil showing the declared
+  window of 4 keys: magenta where weight lands on the fifth key back.
 """
 
 from __future__ import annotations
@@ -64,8 +66,24 @@ attnscope.dashboard(cap, tokens=[model.vocab.decode(row) for row in ids], findin
 '''
 HEADS_HEAD = "blocks.1.attn · head 1"
 
+MASKS_CELL = '''\
+import warnings, torch, attnscope
+from attnscope.demo.flex_decoder import FlexDecoder, FlexDecoderConfig
+
+warnings.filterwarnings("ignore", message="flex_attention called without torch.compile")
+torch.manual_seed(1)
+model = FlexDecoder(FlexDecoderConfig(pattern="window", window=4, window_off_by_one=True)).eval()
+ids = torch.randint(2, 16, (1, 20), generator=torch.Generator().manual_seed(7))
+with torch.no_grad(), attnscope.capture(model) as cap:
+    model(ids)
+declared = lambda b, h, q_idx, kv_idx: (q_idx >= kv_idx) & (q_idx - kv_idx < 4)
+attnscope.dashboard(cap, pattern=declared, checks=attnscope.pattern_table(cap, declared).round(3))
+'''
+MASKS_HEAD = "blocks.0.attn · head 0"
+
 PICTURES = (("dashboard", README_CELL, HEAD), ("story_causal", CAUSAL_CELL, CAUSAL_HEAD),
-            ("story_heads", HEADS_CELL, HEADS_HEAD))
+            ("story_heads", HEADS_CELL, HEADS_HEAD), ("story_masks", MASKS_CELL, MASKS_HEAD))
+ONLY = sys.argv[1:]  # names of the pictures to take (default: all)
 
 
 def main() -> None:
@@ -77,6 +95,8 @@ def main() -> None:
     with jupyter_lab(work / "lab") as lab, sync_playwright() as p, \
             chromium(p, work / "profile", width=1900, height=2200) as ctx:
         for name, cell, head in PICTURES:
+            if ONLY and name not in ONLY:
+                continue
             views_notebooks.write(lab["root"] / f"{name}.ipynb", cell)
             page = ctx.new_page()
             open_notebook(page, lab, name)

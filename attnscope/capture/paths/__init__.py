@@ -7,6 +7,8 @@ module         path
 :mod:`.sdpa`   ``F.scaled_dot_product_attention`` (hand-written blocks, HF ``sdpa``)
 :mod:`.softmax`  a softmax inside an attention module (HF ``eager``, hand-written ``softmax(q @ kᵀ)``)
 :mod:`.tap`    :func:`attnscope.tap`, called by the user's own code
+:mod:`.flex`   ``torch.nn.attention.flex_attention.flex_attention`` (``score_mod``, block masks); not routed
+               by the function mode (FlexAttention does not pass through it): a wrapper is held in place
 =============  ==================================================================================================
 
 A path module defines:
@@ -24,9 +26,9 @@ To add a path: write one module here and add it to :data:`PATHS`. Head intervent
 
 from __future__ import annotations
 
-from attnscope.capture.paths import mha, sdpa, softmax, tap
+from attnscope.capture.paths import flex, mha, sdpa, softmax, tap
 
-__all__ = ["PATHS", "mha", "sdpa", "softmax", "tap"]
+__all__ = ["PATHS", "flex", "mha", "sdpa", "softmax", "tap"]
 
 #: Every path whose ``FUNCS`` the capture intercepts, in the order they are routed.
-PATHS = (sdpa, mha, softmax)
+PATHS = (sdpa, mha, softmax, flex)
