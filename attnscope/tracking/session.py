@@ -49,6 +49,8 @@ from torch import nn
 from torch.overrides import TorchFunctionMode
 
 from attnscope.capture import capture
+from attnscope.capture.recorder import as_4d
+from attnscope.capture.session import remove_mode
 from attnscope.errors import CaptureStateError, OptionError, UnsupportedModelError, suggest
 from attnscope.names import name_matches
 from attnscope.records import STAT_COLUMNS, HeadSums
@@ -191,7 +193,7 @@ class _TwinMode(TorchFunctionMode):
             twin["dropout_p"] = 0.0
             with torch.no_grad():
                 heads = func(**{k: v.detach() if isinstance(v, torch.Tensor) else v for k, v in twin.items()})
-            self.step._observe(_as_4d(heads), None)  # (B, H, Tq, Dh)
+            self.step._observe(as_4d(heads), None)  # (B, H, Tq, Dh)
             return out
         if func is F.multi_head_attention_forward:
             out = self._untouched(func, args, kwargs)
@@ -276,7 +278,7 @@ class _RecordedStep:
                     stack.callback(leave.remove)
             mode = _TwinMode(base, self)
             mode.__enter__()
-            stack.callback(_remove_mode, mode)
+            stack.callback(remove_mode, mode)
         except BaseException:
             self._exit = None
             stack.close()
@@ -354,29 +356,6 @@ class _RecordedStep:
         for name, ratio in self._ratio.items():
             blocks.setdefault(name, [0.0, 0, 0.0, -1.0])[3] = ratio
         return _Sums(attention, self._norms, blocks)
-
-
-def _remove_mode(mode: TorchFunctionMode) -> None:
-    above = []
-    try:
-        while torch._C._len_torch_function_stack() > 0:
-            top = torch._C._pop_torch_function_stack()
-            if top is mode:
-                break
-            above.append(top)
-    finally:
-        for other in reversed(above):
-            torch._C._push_on_torch_function_stack(other)
-
-
-def _as_4d(t: torch.Tensor) -> torch.Tensor:
-    if t.dim() == 4:
-        return t
-    if t.dim() > 4:
-        return t.reshape(-1, *t.shape[-3:])
-    while t.dim() < 4:
-        t = t.unsqueeze(0)
-    return t
 
 
 def _first_tensor(output: Any) -> torch.Tensor | None:
