@@ -163,7 +163,8 @@ def test_dashboard_in_jupyterlab_without_setup_cell(lab, browser):
     assert s1["pick"] == [1.5, 4.5] and s1["selected"] == [17]  # atlas + scores mark
     assert s1["q"] == TARGET and s1["k"] == TARGET
     assert s1["stream_y"] == [3.5] and s1["stream_y"] != s0["stream_y"]  # block decoder.layers.1
-    assert s1["twin_y"][0] == 17.5
+    scene = Scene(translator_capture())  # the same capture as the notebook's; twins rows in clustered order
+    assert s1["twin_y"][0] == scene.twin_pos[17] + 0.5
     assert "causal" in s1["title"]
     page.wait_for_timeout(300)
     assert shot(board.locator(".as-plot")) != lens_png
@@ -187,11 +188,20 @@ def test_dashboard_in_jupyterlab_without_setup_cell(lab, browser):
                            timeout=30_000)
     assert state(page)["selected"] == [7] and state(page)["pick"] == [3.5, 1.5]
 
-    # tap a row of the twins matrix: head 20 (decoder.layers.1.multihead_attn head 0)
+    # tap a row of the twins matrix: row 20 of the clustered order
+    g = scene.twin_order[20]
     tap(page, "as-twins", 3.5, 20.5)
-    page.wait_for_function(f"() => ({STATE_JS})().title.includes('decoder.layers.1.multihead_attn · head 0')",
-                           timeout=30_000)
-    assert state(page)["twin_y"][0] == 20.5 and state(page)["pick"] == [0.5, 5.5]
+    page.wait_for_function(f"() => ({STATE_JS})().selected[0] === {g}", timeout=30_000)
+    assert scene.heads[g].label in state(page)["title"]
+    assert state(page)["twin_y"][0] == 20.5 and state(page)["pick"] == [scene.heads[g].slot + 0.5,
+                                                                         scene.heads[g].record + 0.5]
+
+    # the summary line's duplicate count (an ipywidgets button) selects the next duplicate head
+    twins = scene.tally[1]
+    board.locator(".as-tally-duplicate").click()
+    g = twins.next_head(g)
+    page.wait_for_function(f"() => ({STATE_JS})().selected[0] === {g}", timeout=30_000)
+    assert scene.heads[g].label in state(page)["title"]
     board.screenshot(path=str(ARTIFACTS / "dashboard_lab.png"))
     assert not page.problems, page.problems
     page.close()
