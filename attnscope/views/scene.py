@@ -13,6 +13,9 @@ Views (each a named Bokeh figure):
 * **twins**: the head-to-head distance matrix (duplicate heads are the dark cells off the diagonal).
 * **findings**: the silent/twin-head findings and check results handed in, as tables.
 
+Above them (notebook and page), a summary line counts the dead, duplicate and leaking heads (:attr:`Scene.tally`);
+each count is a button that selects the next flagged head.
+
 Selection (record, head), batch item, statistic and veil are set through :class:`Scene` methods; they
 only assign ``source.data`` and a few properties, the figures are built once. Nothing here computes an
 analysis: the numbers come from the capture's records and head table or from the caller.
@@ -117,7 +120,12 @@ class HeadRef:
 
 @dataclass(frozen=True)
 class Tally:
-    """One item of the summary line: the heads an analysis flagged (None when it was not run) and its text."""
+    """One item of the summary line: the heads an analysis flagged (None when it was not run) and its text.
+
+    >>> t = Tally("dead", (3, 7), "2 dead")
+    >>> [t.next_head(0), t.next_head(3), t.next_head(7)]
+    [3, 7, 3]
+    """
 
     kind: str  # "dead", "duplicate" or "leaking"
     heads: tuple[int, ...] | None  # global head indices, capture order; None: not run
