@@ -287,8 +287,9 @@ class Scene:
             raise ShapeError(f"distances: expected a ({n}, {n}) matrix over the capture's heads, received {m.shape}")
         return m, note
 
-    def _first_head(self, name: str, head: int) -> int:
-        return next(h.g for h in self.heads if self.records[h.record].name == name and h.head == head)
+    def _first_head(self, name: str, head: int) -> int | None:
+        """The first kept head (capture order) of module *name* with the model's head index *head*."""
+        return next((h.g for h in self.heads if self.records[h.record].name == name and h.head == head), None)
 
     def _tally(self, cap: Any, *, given: bool) -> list[Tally]:
         """The summary line: dead heads (:func:`~attnscope.analyses.heads.dead_heads`), duplicate heads (the
@@ -298,7 +299,7 @@ class Scene:
         from attnscope.analyses.heads import dead_heads, duplicate_heads
         from attnscope.analyses.leaks import DEFAULT_TOLERANCE
 
-        dead = list(dict.fromkeys(self._first_head(f.name, f.head) for f in dead_heads(cap)))
+        dead = [g for g in dict.fromkeys(self._first_head(f.name, f.head) for f in dead_heads(cap)) if g is not None]
         out = [Tally("dead", tuple(dead), f"{len(dead)} dead")]
         if self.distances is None:
             out.append(Tally("duplicate", None, f"duplicate: not run ({self.twin_note})"))
@@ -309,7 +310,7 @@ class Scene:
             else:
                 pairs = [(self._first_head(p.name_a, p.head_a), self._first_head(p.name_b, p.head_b))
                          for p in duplicate_heads(cap)]
-            twins = sorted({g for pair in pairs for g in pair})
+            twins = sorted({g for pair in pairs for g in pair if g is not None})
             out.append(Tally("duplicate", tuple(twins), f"{len(twins)} duplicate ({len(pairs)} "
                                                         f"pair{'s' * (len(pairs) != 1)})"))
         leak = self.scores["leak_mass"] if "leak_mass" in self.scores else pd.Series(dtype=float)
