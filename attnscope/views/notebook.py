@@ -156,7 +156,8 @@ class Dashboard(W.VBox):
         self.plot = _BokehView(scene.layout)
         for widget, name in ((self.head_choice, "as-head"), (self.item_choice, "as-item"),
                              (self.statistic_choice, "as-statistic"), (self.veil_choice, "as-veil"),
-                             (self.status, "as-status"), (self.tally_row, "as-tally"), (self.problem, "as-problem"), (self.plot, "as-plot")):
+                             (self.status, "as-status"), (self.tally_row, "as-tally"), (self.problem, "as-problem"),
+                             (self.plot, "as-plot")):
             widget.add_class(name)
         super().__init__([self.tally_row,
                           W.HBox([self.head_choice, self.item_choice, self.statistic_choice, self.veil_choice]),
