@@ -144,14 +144,23 @@ class Dashboard(W.VBox):
                                            description="scores", layout=W.Layout(width="240px"))
         self.veil_choice = W.ToggleButton(value=True, description="mask veil", tooltip="grey: forbidden, magenta: leak")
         self.status = W.Label(value="")
+        self.tally_buttons = {t.kind: W.Button(description=t.text, disabled=not t.heads, layout=W.Layout(width="auto"),
+                                               tooltip=f"show the {t.kind} heads one after another" if t.heads
+                                               else t.text) for t in scene.tally}
+        for t in scene.tally:
+            self.tally_buttons[t.kind].on_click(lambda _button, t=t: self._on_tally(t))
+            self.tally_buttons[t.kind].add_class(f"as-tally-{t.kind}")
+        self.tally_row = W.HBox([W.Label(value="flagged heads:"), *self.tally_buttons.values()])
         self.problem = W.HTML(value="")
         scene.twins_fig.on_event(Tap, self._on_twin_tap)  # before the document is serialized: it subscribes
         self.plot = _BokehView(scene.layout)
         for widget, name in ((self.head_choice, "as-head"), (self.item_choice, "as-item"),
                              (self.statistic_choice, "as-statistic"), (self.veil_choice, "as-veil"),
-                             (self.status, "as-status"), (self.problem, "as-problem"), (self.plot, "as-plot")):
+                             (self.status, "as-status"), (self.tally_row, "as-tally"), (self.problem, "as-problem"),
+                             (self.plot, "as-plot")):
             widget.add_class(name)
-        super().__init__([W.HBox([self.head_choice, self.item_choice, self.statistic_choice, self.veil_choice]),
+        super().__init__([self.tally_row,
+                          W.HBox([self.head_choice, self.item_choice, self.statistic_choice, self.veil_choice]),
                           self.status, self.problem, self.plot], **kwargs)
         self.add_class("as-dashboard")
         self.set_trait("head", scene.g)
@@ -229,6 +238,14 @@ class Dashboard(W.VBox):
         g = self.scene.twin_row(event.y)
         if g is not None:
             self.head = g
+
+    def _on_tally(self, tally: Any) -> None:
+        """A click on a summary item selects its next flagged head (cycling through them)."""
+        g = tally.next_head(self.head)
+        if g is not None:
+            self.head = g
+            self._show_status()
+            self.status.value += f" · {tally.kind} {tally.heads.index(g) + 1} of {len(tally.heads)}"
 
     def _show_status(self) -> None:
         h = self.scene.heads[self.scene.g]

@@ -25,11 +25,11 @@ from typing import Any
 
 from bokeh.embed import file_html
 from bokeh.layouts import column, row
-from bokeh.models import CheckboxGroup, ColumnDataSource, CustomJS, Select
+from bokeh.models import Button, CheckboxGroup, ColumnDataSource, CustomJS, Div, Select
 from bokeh.resources import INLINE
 
 from attnscope.errors import AttnscopeWarning, OptionError
-from attnscope.views.scene import STATISTICS, Scene
+from attnscope.views.scene import STATISTICS, Scene, Tally
 from attnscope.views.tiles import quantise_weights
 
 __all__ = ["export_html"]
@@ -135,6 +135,17 @@ def _vaults(scene: Scene) -> dict[str, ColumnDataSource]:
                 score_range=ColumnDataSource({k: v for k, v in ranges.items()}, name="as-score-range"))
 
 
+def _tally_button(tally: Tally, head_select: Select) -> Button:
+    """A summary item: a click selects the next flagged head through the head chooser (cycling)."""
+    button = Button(label=tally.text, disabled=not tally.heads, name=f"as-tally-{tally.kind}",
+                    css_classes=[f"as-tally-{tally.kind}"], width_policy="min")
+    button.js_on_event("button_click", CustomJS(args=dict(heads=list(tally.heads or ()), head_select=head_select),
+                                                code="""
+const at = heads.indexOf(Number(head_select.value));
+if (heads.length > 0) head_select.value = String(heads[(at + 1) % heads.length]);"""))
+    return button
+
+
 def _lens_side_for(cap: Any, lens_side: int, max_bytes: int) -> int:
     """The lens side that keeps the stored maps (uint16 codes + uint8 veil, 3 bytes a cell) under *max_bytes*."""
     def size(side: int) -> int:
@@ -222,7 +233,9 @@ const data = Object.assign({}, cells.data); data.score = values.data[name]; cell
 mapper.setv({low: ranges.data[name][0], high: ranges.data[name][1]});
 fig.title.text = 'scores: ' + name + ' per head';"""))
     veil_box.js_on_change("active", CustomJS(args=dict(veil=scene.veil), code="veil.visible = this.active.includes(0);"))
-    page = column(row(head_select, item_select, stat_select, veil_box), scene.layout, name="as-page")
+    tally_row = row(Div(text="flagged heads:", name="as-tally-label"), *[_tally_button(t, head_select)
+                                                                       for t in scene.tally], name="as-tally")
+    page = column(tally_row, row(head_select, item_select, stat_select, veil_box), scene.layout, name="as-page")
     out = Path(path)
     out.write_text(file_html(page, INLINE, title=title), encoding="utf-8")
     return out

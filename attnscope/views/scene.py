@@ -13,6 +13,9 @@ Views (each a named Bokeh figure):
 * **twins**: the head-to-head distance matrix (duplicate heads are the dark cells off the diagonal).
 * **findings**: the silent/twin-head findings and check results handed in, as tables.
 
+Above them (notebook and page), a summary line counts the dead, duplicate and leaking heads (:attr:`Scene.tally`);
+each count is a button that selects the next flagged head.
+
 Selection (record, head), batch item, statistic and veil are set through :class:`Scene` methods; they
 only assign ``source.data`` and a few properties, the figures are built once. Nothing here computes an
 analysis: the numbers come from the capture's records and head table or from the caller.
@@ -62,7 +65,7 @@ from attnscope.views.findings import as_frame, as_tables, html_table
 from attnscope.views.labels import TokenLabels
 from attnscope.views.tiles import TILE_TOP, mask_codes, pool, quantise_tile
 
-__all__ = ["CAUTION", "STATISTICS", "Scene"]
+__all__ = ["CAUTION", "STATISTICS", "Scene", "Tally"]
 
 CAUTION = ("Attention weights show where a model looked, not why it decided: they are not a faithful explanation "
            "of its decisions (Jain & Wallace 2019) and are no basis for high-stakes decisions.")
@@ -114,6 +117,26 @@ class HeadRef:
     slot: int  # position on the record's head axis
     head: int  # the model's head index
     label: str
+
+
+@dataclass(frozen=True)
+class Tally:
+    """One item of the summary line: the heads an analysis flagged (None when it was not run) and its text.
+
+    >>> t = Tally("dead", (3, 7), "2 dead")
+    >>> [t.next_head(0), t.next_head(3), t.next_head(7)]
+    [3, 7, 3]
+    """
+
+    kind: str  # "dead", "duplicate" or "leaking"
+    heads: tuple[int, ...] | None  # global head indices, capture order; None: not run
+    text: str  # the line's words, e.g. "2 dead" or "duplicate: not run (...)"
+
+    def next_head(self, current: int) -> int | None:
+        """The flagged head after *current* (the first when *current* is not flagged), cycling; None if none."""
+        if not self.heads:
+            return None
+        return self.heads[(self.heads.index(current) + 1) % len(self.heads)] if current in self.heads else self.heads[0]
 
 
 def _record_labels(records: Sequence[Any]) -> list[str]:
@@ -194,6 +217,7 @@ class Scene:
         self._warn_pooled_lens()
         self.scores = self._score_table()
         self.distances, self.twin_note = self._distances(cap, distances)
+        self.tally = self._tally(cap, given=distances is not None)
         self.findings = as_tables(findings, "findings") or [("findings", as_frame(None))]
         self.checks = as_tables(checks, "checks") or [("checks", as_frame(None))]
         self._build()
@@ -266,6 +290,40 @@ class Scene:
         if m.shape != (n, n):
             raise ShapeError(f"distances: expected a ({n}, {n}) matrix over the capture's heads, received {m.shape}")
         return m, note
+
+    def _first_head(self, name: str, head: int) -> int | None:
+        """The first kept head (capture order) of module *name* with the model's head index *head*."""
+        return next((h.g for h in self.heads if self.records[h.record].name == name and h.head == head), None)
+
+    def _tally(self, cap: Any, *, given: bool) -> list[Tally]:
+        """The summary line: dead heads (:func:`~attnscope.analyses.heads.dead_heads`), duplicate heads (the
+        pairs of :func:`~attnscope.analyses.heads.duplicate_heads` when the twins matrix was computed here, or
+        given distances at most its default 0.1 apart), leaking heads (head table ``leak_mass`` above the
+        tolerance of :func:`~attnscope.analyses.leaks.leak_summary`)."""
+        from attnscope.analyses.heads import dead_heads, duplicate_heads
+        from attnscope.analyses.leaks import DEFAULT_TOLERANCE
+
+        dead = [g for g in dict.fromkeys(self._first_head(f.name, f.head) for f in dead_heads(cap)) if g is not None]
+        out = [Tally("dead", tuple(dead), f"{len(dead)} dead")]
+        if self.distances is None:
+            out.append(Tally("duplicate", None, f"duplicate: not run ({self.twin_note})"))
+        else:
+            if given:
+                close = np.argwhere(np.triu(self.distances <= 0.1, k=1))  # pairs (a, b), a < b
+                pairs = [(int(a), int(b)) for a, b in close]
+            else:
+                pairs = [(self._first_head(p.name_a, p.head_a), self._first_head(p.name_b, p.head_b))
+                         for p in duplicate_heads(cap)]
+            twins = sorted({g for pair in pairs for g in pair if g is not None})
+            out.append(Tally("duplicate", tuple(twins), f"{len(twins)} duplicate ({len(pairs)} "
+                                                        f"pair{'s' * (len(pairs) != 1)})"))
+        leak = self.scores["leak_mass"] if "leak_mass" in self.scores else pd.Series(dtype=float)
+        if leak.notna().any():
+            leaking = tuple(int(g) for g in np.flatnonzero(leak.to_numpy() > DEFAULT_TOLERANCE))
+            out.append(Tally("leaking", leaking, f"{len(leaking)} leaking"))
+        else:
+            out.append(Tally("leaking", None, "leaking: not run (no leak mass in the head table)"))
+        return out
 
     # ---------------------------------------------------------------- figures
     def _build(self) -> None:

@@ -14,6 +14,7 @@ from pathlib import Path
 import pytest
 
 from attnscope.views import export_html
+from attnscope.views.scene import Scene
 from conftest import HOSTILE, SOURCE, TARGET, translator_capture
 from labserver import chromium, jupyter_lab, open_notebook, open_notebook7, run_all
 import views_notebooks
@@ -162,7 +163,8 @@ def test_dashboard_in_jupyterlab_without_setup_cell(lab, browser):
     assert s1["pick"] == [1.5, 4.5] and s1["selected"] == [17]  # atlas + scores mark
     assert s1["q"] == TARGET and s1["k"] == TARGET
     assert s1["stream_y"] == [3.5] and s1["stream_y"] != s0["stream_y"]  # block decoder.layers.1
-    assert s1["twin_y"][0] == 17.5
+    scene = Scene(translator_capture())  # the same capture as the notebook's; twins rows in clustered order
+    assert s1["twin_y"][0] == scene.twin_pos[17] + 0.5
     assert "causal" in s1["title"]
     page.wait_for_timeout(300)
     assert shot(board.locator(".as-plot")) != lens_png
@@ -186,11 +188,20 @@ def test_dashboard_in_jupyterlab_without_setup_cell(lab, browser):
                            timeout=30_000)
     assert state(page)["selected"] == [7] and state(page)["pick"] == [3.5, 1.5]
 
-    # tap a row of the twins matrix: head 20 (decoder.layers.1.multihead_attn head 0)
+    # tap a row of the twins matrix: row 20 of the clustered order
+    g = scene.twin_order[20]
     tap(page, "as-twins", 3.5, 20.5)
-    page.wait_for_function(f"() => ({STATE_JS})().title.includes('decoder.layers.1.multihead_attn · head 0')",
-                           timeout=30_000)
-    assert state(page)["twin_y"][0] == 20.5 and state(page)["pick"] == [0.5, 5.5]
+    page.wait_for_function(f"() => ({STATE_JS})().selected[0] === {g}", timeout=30_000)
+    assert scene.heads[g].label in state(page)["title"]
+    assert state(page)["twin_y"][0] == 20.5 and state(page)["pick"] == [scene.heads[g].slot + 0.5,
+                                                                         scene.heads[g].record + 0.5]
+
+    # the summary line's duplicate count (an ipywidgets button) selects the next duplicate head
+    twins = scene.tally[1]
+    board.locator(".as-tally-duplicate").click()
+    g = twins.next_head(g)
+    page.wait_for_function(f"() => ({STATE_JS})().selected[0] === {g}", timeout=30_000)
+    assert scene.heads[g].label in state(page)["title"]
     board.screenshot(path=str(ARTIFACTS / "dashboard_lab.png"))
     assert not page.problems, page.problems
     page.close()
@@ -252,15 +263,26 @@ def test_exported_page_offline_from_file(playwright, tmp_path, tmp_path_factory)
         assert s2["k"] == SOURCE and 0 < s2["lens_max"] <= 1 and s2["top"] == pytest.approx(s2["lens_max"], rel=1e-4)
         assert selects.nth(0).evaluate("s => s.options[s.selectedIndex].text.replace(/\\u00a0/g, ' ')") == \
             "decoder.layers.0.multihead_attn · head 2"
+        scene = Scene(cap)  # the twins rows are ordered by clusters: row 5 is the head twin_order names
         tap(page, "as-twins", 1.5, 5.5)
-        page.wait_for_function(f"() => ({STATE_JS})().title.includes('encoder.layers.1.self_attn · head 1')",
-                               timeout=10_000)
+        page.wait_for_function(f"() => ({STATE_JS})().selected[0] === {scene.twin_order[5]}", timeout=10_000)
+        assert scene.heads[scene.twin_order[5]].label in state(page)["title"]
         selects.nth(1).select_option(label="item 1")
         page.wait_for_function(f"() => ({STATE_JS})().title.includes('item 1')", timeout=10_000)
         page.get_by_text("mask veil").click()
         page.wait_for_function(f"() => ({STATE_JS})().veil === false", timeout=10_000)
         selects.nth(2).select_option("sink_mass")
         page.wait_for_function(f"() => ({STATE_JS})().scores.includes('sink_mass')", timeout=10_000)
+        # the summary line: a click on the duplicate count selects a flagged head, a second click the next one
+        twins = scene.tally[1]
+        assert twins.kind == "duplicate" and len(twins.heads) >= 2
+        button = page.get_by_role("button", name=twins.text)
+        g = state(page)["selected"][0]
+        for _ in range(2):
+            g = twins.next_head(g)
+            button.click()
+            page.wait_for_function(f"() => ({STATE_JS})().selected[0] === {g}", timeout=10_000)
+            assert scene.heads[g].label in state(page)["title"]
         page.wait_for_timeout(300)
         page.screenshot(path=str(ARTIFACTS / "dashboard_page.png"), full_page=True)
         assert not page.problems, page.problems

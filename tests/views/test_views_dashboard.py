@@ -351,3 +351,74 @@ def test_twins_matrix_is_labelled_and_ordered_by_clusters():
     for ax in (s.twins_fig.xaxis[0], s.twins_fig.yaxis[0]):
         assert ax.visible and ax.axis_label.startswith("head")
         assert [ax.major_label_overrides[t] for t in ax.ticker.ticks] == [f"0.{g}" for g in expected]
+
+
+# ---------------------------------------------------------------- summary line of flagged heads
+@pytest.fixture(scope="module")
+def specimen():
+    """The demo heads specimen (planted uniform, sink, silent and duplicate heads) on three task sequences."""
+    from attnscope import demo
+    from attnscope.demo import task
+
+    model = demo.load("heads_specimen")
+    ids, _ = task.lm_batch(task.make_examples(3, seed=0))
+    with torch.no_grad(), attnscope.capture(model) as cap:
+        model(ids)
+    return cap
+
+
+def _flagged(board, pairs):
+    return sorted({board.scene.head_index(name, head) for name, head in pairs})
+
+
+def test_summary_counts_are_those_of_the_analyses_and_clicks_cycle_through_them(specimen):
+    from attnscope.demo.heads_specimen import PLANTED
+
+    board = dashboard(specimen)
+    buttons = board.tally_buttons
+    assert board.children[0] is board.tally_row and "as-tally-dead" in buttons["dead"]._dom_classes
+    dead = attnscope.dead_heads(specimen)
+    pairs = attnscope.duplicate_heads(specimen)
+    dead_g = _flagged(board, [(f.name, f.head) for f in dead])
+    twin_g = _flagged(board, [(p.name_a, p.head_a) for p in pairs] + [(p.name_b, p.head_b) for p in pairs])
+    # planted by weight surgery (attnscope.demo.heads_specimen): the uniform and sink heads show in the maps,
+    # the duplicate pair is head 0 and head 2 of blocks.1.attn
+    assert set(PLANTED["uniform"] + PLANTED["sink"]) <= {(f.name, f.head) for f in dead}
+    assert twin_g == _flagged(board, [p for pair in PLANTED["duplicate"] for p in pair])
+    assert buttons["dead"].description == f"{len(dead_g)} dead" and len(dead_g) >= 2
+    assert buttons["duplicate"].description == f"{len(twin_g)} duplicate ({len(pairs)} pair)"
+    # causal masks applied by the model itself: no weight on forbidden keys (leak_table agrees)
+    assert buttons["leaking"].description == "0 leaking" and buttons["leaking"].disabled
+    assert (attnscope.leak_table(specimen)["leak_mass"] <= 1e-6).all()
+
+    board.head = next(g for g in range(len(board.scene.heads)) if g not in dead_g)
+    seen = []
+    for _ in range(len(dead_g) + 1):
+        buttons["dead"].click()
+        seen.append(board.head)
+        assert board.scene.g == board.head and board.scene.cells_src.selected.indices == [board.head]
+        assert board.scene.lens_fig.title.text.startswith(board.scene.heads[board.head].label)
+    assert seen == dead_g + dead_g[:1] and f"dead 1 of {len(dead_g)}" in board.status.value
+    buttons["duplicate"].click()
+    assert board.head == twin_g[0] and board.scene.pick_src.data["x"] == [board.scene.heads[twin_g[0]].slot + 0.5]
+
+
+def test_summary_says_when_an_analysis_was_not_run(leaky):
+    board = dashboard(leaky)
+    texts = {k: b.description for k, b in board.tally_buttons.items()}
+    leaking = attnscope.leak_table(leaky)
+    assert texts["leaking"] == f"{int((leaking['leak_mass'] > 1e-6).sum())} leaking" != "0 leaking"
+    given = np.full((len(board.scene.heads),) * 2, 0.5)
+    assert dashboard(leaky, distances=given).tally_buttons["duplicate"].description == "0 duplicate (0 pairs)"
+    given[0, 1] = given[1, 0] = 0.05  # at most duplicate_heads' default max_distance 0.1
+    assert dashboard(leaky, distances=given).scene.tally[1].heads == (0, 1)
+
+    torch.manual_seed(0)
+    mha = nn.MultiheadAttention(8, 2, batch_first=True)
+    x = torch.randn(1, 4, 8)
+    with torch.no_grad(), attnscope.capture(mha, keep="stats") as cap:
+        mha(x, x, x)
+    stats = dashboard(cap).tally_buttons
+    assert stats["duplicate"].description.startswith("duplicate: not run (not available: the capture kept stat")
+    assert stats["duplicate"].disabled and "0" not in stats["duplicate"].description
+    assert stats["dead"].description == f"{len(attnscope.dead_heads(cap))} dead"

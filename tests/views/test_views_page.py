@@ -93,3 +93,23 @@ def test_token_labels_of_the_wrong_length_raise_and_write_nothing(tmp_path, coun
     else:
         assert attnscope.dashboard(cap, tokens=[tokens]).scene.lens_arrays(0, 0)["k"] == [*tokens, "5"]
     assert attnscope.export_html(cap, path, tokens=tokens[:6] + ["x"] * (6 - count)).exists()  # right length: fine
+
+
+def test_page_summary_line_counts_and_cycles_through_the_flagged_heads(tmp_path):
+    from attnscope import demo
+    from attnscope.demo import task
+
+    model = demo.load("heads_specimen")
+    ids, _ = task.lm_batch(task.make_examples(3, seed=0))
+    with attnscope.capture(model) as cap:
+        model(ids)
+    html = export_html(cap, tmp_path / "specimen.html").read_text(encoding="utf-8")
+    dead = {(f.name, f.head) for f in attnscope.dead_heads(cap)}
+    pairs = attnscope.duplicate_heads(cap)
+    twins = {(p.name_a, p.head_a) for p in pairs} | {(p.name_b, p.head_b) for p in pairs}
+    for text in (f"{len(dead)} dead", f"{len(twins)} duplicate ({len(pairs)} pair)", "0 leaking", "flagged heads:"):
+        assert f'"{text}"' in html, text  # a Bokeh Button label or Div text in the page's document JSON
+    scene = Scene(cap)
+    assert scene.tally[0].heads == tuple(sorted(scene.head_index(n, h) for n, h in dead))
+    assert "heads.indexOf(Number(head_select.value))" in html
+    assert CAUTION.split(":")[0] in html
