@@ -37,6 +37,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+import torch
 from scipy.special import rel_entr
 
 from attnscope.errors import OptionError
@@ -51,6 +52,7 @@ _PIECE_BYTES = 8 << 20  # float32 rows of a group's heads gathered at once for t
 _PAIR_BYTES = 8 << 20  # float64 pair rows held at once in the exact pass
 _EDGE = 32  # key columns looked at together when trimming columns no row of a piece reaches
 _TINY = 1e-300  # added to every weight before a logarithm: zeros then give 0·log, other values are unchanged
+_SAMPLE_ROWS = 8  # sampled rows computed together in the exact pass
 _CLOSE = 1e-4  # rows with a Jensen–Shannon divergence (nats) below this are recomputed term by term
 
 
@@ -86,8 +88,8 @@ class _Group:
             for q0 in range(0, self.tq, rows):
                 yield b, q0, min(q0 + rows, self.tq)
 
-    def extent(self, heads: Sequence[int], b: int, q0: int, q1: int) -> tuple[int, int]:
-        """Key columns ``[k0, k1)`` outside which every weight of rows ``q0:q1`` of every head in *heads* is 0.
+    def extent(self, heads: Sequence[int], b: int, qs: slice | np.ndarray) -> tuple[int, int]:
+        """Key columns ``[k0, k1)`` outside which every weight of query rows *qs* of every head in *heads* is 0.
 
         Read from the weights themselves (a mask is only a first guess, checked against them), a few columns
         at a time from each end; a causal map's piece ends where its last query does.
@@ -100,9 +102,9 @@ class _Group:
                 continue
             seen.add(id(w))
             js = [self.maps[m][1] for m in heads if self.maps[m][0] is w]
-            view = w[b, min(js):max(js) + 1, q0:q1]  # (h, r, Tk), a view
+            view = w[b, min(js):max(js) + 1, qs]  # (h, r, Tk), a view for a slice of rows
             hint = self.hints[i]
-            lo, hi = (0, self.tk) if hint is None else (int(hint[0][q0:q1].min()), int(hint[1][q0:q1].max()) + 1)
+            lo, hi = (0, self.tk) if hint is None else (int(hint[0][qs].min()), int(hint[1][qs].max()) + 1)
             hi = hi if hi <= lo or not view[..., hi:].any() else self.tk
             lo = lo if lo >= hi or not view[..., :lo].any() else 0
             while hi > max(lo, k1) and not view[..., max(hi - _EDGE, lo):hi].any():
@@ -112,17 +114,17 @@ class _Group:
             k0, k1 = min(k0, lo), max(k1, hi)
         return (k0, k1) if k0 < k1 else (0, 0)
 
-    def gather(self, heads: Sequence[int], b: int, q0: int, q1: int, k0: int, k1: int,
+    def gather(self, heads: Sequence[int], b: int, qs: slice | np.ndarray, k0: int, k1: int,
                head_first: bool = False) -> np.ndarray:
-        """float32 rows ``q0:q1``, keys ``k0:k1`` of *heads*: ``(r, n, k)``, or ``(n, r, k)`` if *head_first*."""
-        n, r, k = len(heads), q1 - q0, k1 - k0
-        out = np.empty((n, r, k) if head_first else (r, n, k), np.float32)
+        """float32 query rows *qs*, keys ``k0:k1`` of *heads*: ``(r, n, k)``, or ``(n, r, k)`` if *head_first*."""
+        r = len(range(self.tq)[qs]) if isinstance(qs, slice) else len(qs)
+        out = np.empty((len(heads), r, k1 - k0) if head_first else (r, len(heads), k1 - k0), np.float32)
         for pos, i in enumerate(heads):
             w, j = self.maps[i]
             if head_first:
-                out[pos] = w[b, j, q0:q1, k0:k1]
+                out[pos] = w[b, j, qs, k0:k1]
             else:
-                out[:, pos] = w[b, j, q0:q1, k0:k1]
+                out[:, pos] = w[b, j, qs, k0:k1]
         return out
 
 
@@ -154,6 +156,19 @@ def _groups(recs: Sequence[AttentionRecord], item: int | None) -> tuple[list[tup
     return labels, list(groups.values())
 
 
+def _gram(x: np.ndarray) -> np.ndarray:
+    """``x @ xᵀ`` per row of a float32 ``(r, n, k)`` array, in float32 arithmetic.
+
+    torch's batched product keeps its own thread pool steady on a busy machine (a BLAS thread pool that spins
+    can be many times slower there); numpy's product is used when torch is allowed to lower float32 precision
+    (``torch.set_float32_matmul_precision``), so the rounding bound of :func:`_slack` always holds.
+    """
+    if torch.get_float32_matmul_precision() != "highest":
+        return np.matmul(x, x.transpose(0, 2, 1))
+    t = torch.from_numpy(x)  # (r, n, k), shares memory
+    return torch.bmm(t, t.transpose(1, 2)).numpy()  # (r, n, n)
+
+
 @dataclass
 class _Bounds:
     """Sums over the rows both heads count of each pair's row bounds, and what the estimate needs."""
@@ -181,14 +196,14 @@ def _bounds(g: _Group, keep: Sequence[int] = ()) -> _Bounds:
     rows = max(1, _PIECE_BYTES // max(1, 4 * n * g.tk))
     heads = list(range(n))
     for b, q0, q1 in g.spans(rows):
-        k0, k1 = g.extent(heads, b, q0, q1)
-        x = g.gather(heads, b, q0, q1, k0, k1)  # (r, n, k) float32
+        k0, k1 = g.extent(heads, b, slice(q0, q1))
+        x = g.gather(heads, b, slice(q0, q1), k0, k1)  # (r, n, k) float32
         s = x.sum(axis=-1, dtype=np.float64)  # (r, n); finite exactly when every weight of the row is
         good = np.isfinite(s) & (s > 0)  # (r, n)
         if not good.all():
             x[~good] = 0.0
         np.sqrt(x, out=x)
-        bc = np.matmul(x, x.transpose(0, 2, 1))  # (r, n, n): Bhattacharyya coefficients before normalising
+        bc = _gram(x)  # (r, n, n): Bhattacharyya coefficients before normalising
         del x
         scale = np.where(good, 1.0 / np.sqrt(np.where(good, s, 1.0)), 0.0).astype(np.float32)  # (r, n)
         bc *= scale[:, :, None]
@@ -231,20 +246,24 @@ def _pair_rows(g: _Group, pairs: Sequence[tuple[int, int]],
     partners: dict[int, list[tuple[int, int]]] = {}  # first head -> [(pair index, partner position)]
     for idx, (a, b) in enumerate(pairs):
         partners.setdefault(pos[a], []).append((idx, pos[b]))
+    per = max(1, _PIECE_BYTES // max(1, 8 * len(heads) * g.tk))
+    pieces: list[tuple[int, slice | np.ndarray]] = []
     if rows is None:
-        per = max(1, _PIECE_BYTES // max(1, 8 * len(heads) * g.tk))
-        pieces = [(b, q0, q1) for b, q0, q1 in g.spans(per)]
-    else:
-        pieces = [(int(r) // g.tq, int(r) % g.tq, int(r) % g.tq + 1) for r in rows]
-    for b, q0, q1 in pieces:
-        r = q1 - q0
-        ids = np.arange(b * g.tq + q0, b * g.tq + q1)
+        pieces = [(b, slice(q0, q1)) for b, q0, q1 in g.spans(per)]
+    else:  # sorted rows of one item, a few at a time: keys reached by one of them are computed for all
+        rows = np.sort(np.asarray(rows, dtype=np.int64))
+        for b in np.unique(rows // g.tq):
+            qs = rows[rows // g.tq == b] % g.tq
+            pieces += [(int(b), qs[i:i + _SAMPLE_ROWS]) for i in range(0, len(qs), _SAMPLE_ROWS)]
+    for b, qs in pieces:
+        ids = b * g.tq + (np.arange(g.tq)[qs])
+        r = len(ids)
         out = np.full((len(pairs), r), np.nan)
-        k0, k1 = g.extent(heads, b, q0, q1)
+        k0, k1 = g.extent(heads, b, qs)
         if k1 == k0:
             yield ids, out
             continue
-        x = g.gather(heads, b, q0, q1, k0, k1, head_first=True).astype(np.float64)  # (n, r, k)
+        x = g.gather(heads, b, qs, k0, k1, head_first=True).astype(np.float64)  # (n, r, k)
         s = x.sum(axis=-1)  # (n, r)
         good = np.isfinite(s) & (s > 0)  # (n, r)
         x[~good] = 0.0
@@ -346,6 +365,9 @@ def _exact_matrix(cap: Any, item: int | None, below: np.ndarray | None = None) -
 #: when the sample is chosen from a requested error.
 _RANGE_MAX = 1.0 - 1.0 / UPPER_FACTOR
 
+#: Largest memory for the first-pass values of the rows the sample may draw (float32, (heads, heads) per row).
+_KEEP_BYTES = 128 << 20
+
 #: Added to the stated error bound: float64 rounding of the sampled exact distances (far above its worst case).
 _ROUNDING = 1e-9
 
@@ -408,9 +430,13 @@ def head_distances(cap: Any, item: int | None = None, *, exact: bool = False, sa
     recs = _records(cap)
     labels, groups = _groups(recs, item)
     widest = max((_RANGE_MAX + UPPER_FACTOR * math.sqrt(2.0 * _slack(g.tk)) for g in groups), default=0.0)
-    most = sample if error is None else _rows_for(error, widest, confidence)  # rows kept from the first pass
-    most = 64 if most is None else most
-    if exact or all(g.batch * g.tq <= most for g in groups):
+    most = (64 if sample is None else sample) if error is None else _rows_for(error, widest, confidence)
+
+    def keeps(g: _Group) -> int:  # rows whose first-pass values are kept for the sample (bounded memory)
+        return min(g.batch * g.tq, most, max(1, _KEEP_BYTES // (4 * len(g.cols) ** 2)))
+
+    if exact or all(g.batch * g.tq <= (most if error is None else 0) or keeps(g) < min(most, g.batch * g.tq)
+                    for g in groups):
         frame = _frame(*_exact_matrix(recs, item))
         frame.attrs["error_bound"] = 0.0
         frame.attrs["sample"] = 0
@@ -420,13 +446,13 @@ def head_distances(cap: Any, item: int | None = None, *, exact: bool = False, sa
     rng = np.random.default_rng(seed)
     for g in groups:
         n, rows = len(g.cols), g.batch * g.tq
-        order = rng.permutation(rows)[:most]
+        order = rng.permutation(rows)[:keeps(g)]
         first = _bounds(g, keep=order)
         low, high = _mean(first.low, first.count), _mean(first.high, first.count)
         pairs = [(a, b) for a in range(n) for b in range(a + 1, n)]
         ia, ib = np.array([p[0] for p in pairs], int), np.array([p[1] for p in pairs], int)
         spread = first.spread[ia, ib].astype(np.float64)  # (P,)
-        m = most if error is None else min(most, _rows_for(error, float(spread.max(initial=0.0)), confidence))
+        m = len(order) if error is None else _rows_for(error, float(spread.max(initial=0.0)), confidence)
         block = np.full((n, n), np.nan)
         if m >= rows:
             total, count = _exact_sums(g, pairs)

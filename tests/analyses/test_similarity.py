@@ -141,3 +141,110 @@ def test_estimate_within_its_stated_bound_and_exact_when_asked():
     w = recs[0].weights[0]  # reference: scipy on one pair, exact mode
     ref = np.mean([jensenshannon(p, q, base=2) for p, q in zip(w[0].astype(np.float64), w[1].astype(np.float64))])
     assert exact.iloc[0, 1] == pytest.approx(ref, abs=1e-9)
+
+
+# ---------------------------------------------------------------- the fast passes against brute force
+def _brute(recs):
+    """Brute force: scipy's Jensen–Shannon distance (base 2) per (item, query) row, averaged, for every pair."""
+    heads = [r.weights[:, j].reshape(-1, r.weights.shape[-1]).astype(np.float64) for r in recs
+             for j in range(r.weights.shape[1])]
+    out = np.zeros((len(heads), len(heads)))
+    for a in range(len(heads)):
+        for b in range(a + 1, len(heads)):
+            rows = [jensenshannon(p, q, base=2) for p, q in zip(heads[a], heads[b])
+                    if np.isfinite(p).all() and np.isfinite(q).all() and p.sum() > 0 and q.sum() > 0]
+            out[a, b] = out[b, a] = np.mean(rows)
+    return out
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_estimate_within_stated_bound_of_brute_force_scipy(seed):
+    recs = _planted_maps(seed, heads=12, tq=150, tk=150)
+    ref = _brute(recs)  # reference: scipy jensenshannon on every row of every pair
+    for kwargs in ({}, {"sample": 20}, {"error": 0.01}, {"error": 0.03, "confidence": 0.99}):
+        est = head_distances(recs, seed=seed, **kwargs)
+        bound = est.attrs["error_bound"]
+        m, conf = est.attrs["sample"], kwargs.get("confidence", 0.95)
+        if m == 0:  # the error asked for needs every row: computed exactly
+            assert "error" in kwargs and bound == 0.0
+        else:
+            assert m < 150 and 0 < bound <= 0.19 * np.sqrt(np.log(2 / (1 - conf)) / (2 * m))  # documented cap
+            assert m == kwargs.get("sample", m) and ("error" in kwargs or m == kwargs.get("sample", 64))
+        if "error" in kwargs:
+            assert bound <= kwargs["error"]
+        # Hoeffding's bound holds per pair with the stated confidence; it is loose, so none of these exceed it
+        assert np.abs(est.to_numpy() - ref).max() <= bound + 1e-9  # 1e-9: float64 rounding of the exact part
+    exact = head_distances(recs, exact=True)
+    np.testing.assert_allclose(exact.to_numpy(), ref, atol=1e-9)
+    assert exact.attrs["error_bound"] == 0.0
+
+
+def test_sample_chosen_from_error_shrinks_with_the_spread():
+    # spread-out heads (small Hellinger distances, narrow sampled terms) need fewer rows for the same error
+    from attnscope.records import AttentionRecord, HeadSums
+
+    rng = np.random.default_rng(0)
+    sizes = []
+    for scale in (0.05, 1.0, 8.0):
+        s = rng.normal(size=(1, 4, 400, 50)) * scale
+        w = np.exp(s - s.max(-1, keepdims=True))
+        w = (w / w.sum(-1, keepdims=True)).astype(np.float32)  # (B, H, Tq, Tk)
+        rec = AttentionRecord("blk", "self", w, None, False, HeadSums.zeros(4), w.shape, tuple(range(4)))
+        est = head_distances([rec], error=0.02)
+        sizes.append(est.attrs["sample"])
+        assert 0 < est.attrs["error_bound"] <= 0.02
+        assert np.abs(est.to_numpy() - _brute([rec])).max() <= est.attrs["error_bound"]  # reference: scipy
+    assert 0 < sizes[0] < sizes[1] < sizes[2] < 400, sizes
+
+
+def test_upper_bound_holds_for_near_copies():
+    # rows differing by 1e-4 relative: the exact distance is tiny but positive; the float32 lower bound rounds
+    # to 0, and the upper bound must still cover it (reference: scipy jensenshannon)
+    from attnscope.analyses.similarity import distance_bounds
+    from attnscope.records import AttentionRecord, HeadSums
+
+    rng = np.random.default_rng(1)
+    base = rng.dirichlet(np.ones(64), size=30)  # (Tq, Tk)
+    other = base * (1 + 1e-4 * rng.normal(size=base.shape))
+    w = np.stack([base, other / other.sum(-1, keepdims=True)])[None].astype(np.float32)  # (B, H, Tq, Tk)
+    rec = AttentionRecord("blk", "self", w, None, False, HeadSums.zeros(2), w.shape, (0, 1))
+    low, high = (f.to_numpy()[0, 1] for f in distance_bounds([rec]))
+    ref = np.mean([jensenshannon(p, q, base=2) for p, q in zip(w[0, 0].astype(np.float64), w[0, 1].astype(np.float64))])
+    assert 0 < ref and low <= ref <= high
+
+
+def test_keys_left_out_only_where_every_weight_is_zero():
+    # windows, left padding, a leaky head the mask does not admit, a NaN row and an all-zero row: the passes
+    # skip key columns by reading the weights, so every variant must match brute-force scipy
+    from attnscope.records import AttentionRecord, HeadSums
+
+    rng = np.random.default_rng(2)
+    tq = tk = 70
+    q, k = np.arange(tq)[:, None], np.arange(tk)[None, :]
+    allowed = (k <= q) & (k > q - 12) & (k >= 5)  # window of 12 keys, 5 padded keys on the left
+    s = rng.normal(size=(2, 4, tq, tk)) * 2.0
+    s = np.where(allowed, s, -np.inf)
+    w = np.exp(s - np.where(allowed, s, 0.0).max(-1, keepdims=True)) * allowed
+    w = (w / np.maximum(w.sum(-1, keepdims=True), 1e-30)).astype(np.float32)  # (B, H, Tq, Tk); rows 0-4 all 0
+    w[1, 2, :, -1] = 0.3  # a head reading a key its mask forbids: the mask is a guess, the weights decide
+    w[0, 3, 40, 7] = np.nan  # a broken row, left out of every pair with head 3
+    mask = np.broadcast_to(allowed, (2, 1, tq, tk))
+    rec = AttentionRecord("blk", "self", w, mask, True, HeadSums.zeros(4), w.shape, tuple(range(4)))
+    ref = _brute([rec])  # reference: scipy jensenshannon on the rows both heads count
+    np.testing.assert_allclose(head_distances([rec], exact=True).to_numpy(), ref, atol=1e-9)
+    est = head_distances([rec], sample=30)
+    assert np.abs(est.to_numpy() - ref).max() <= est.attrs["error_bound"]
+    from attnscope.analyses.similarity import distance_bounds
+
+    low, high = (f.to_numpy() for f in distance_bounds([rec]))
+    assert (low <= ref + 1e-12).all() and (ref <= high + 1e-12).all()
+
+
+def test_sample_and_error_options_fail_at_the_door():
+    from attnscope.errors import OptionError
+
+    recs = _planted_maps(0)
+    for kwargs, word in (({"sample": 0}, "sample"), ({"error": 1.5}, "error"), ({"sample": 8, "error": 0.1}, "not both"),
+                         ({"confidence": 1.0}, "confidence")):
+        with pytest.raises(OptionError, match=word):
+            head_distances(recs, **kwargs)
