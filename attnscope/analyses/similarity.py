@@ -157,15 +157,16 @@ def _groups(recs: Sequence[AttentionRecord], item: int | None) -> tuple[list[tup
 
 
 def _gram(x: np.ndarray) -> np.ndarray:
-    """``x @ xᵀ`` per row of a float32 ``(r, n, k)`` array, in float32 arithmetic.
+    """``(r, n, n)``: ``x[:, i] · x[:, j]`` for every row of a float32 ``(n, r, k)`` array, in float32 arithmetic.
 
     torch's batched product keeps its own thread pool steady on a busy machine (a BLAS thread pool that spins
     can be many times slower there); numpy's product is used when torch is allowed to lower float32 precision
     (``torch.set_float32_matmul_precision``), so the rounding bound of :func:`_slack` always holds.
     """
     if torch.get_float32_matmul_precision() != "highest":
-        return np.matmul(x, x.transpose(0, 2, 1))
-    t = torch.from_numpy(x)  # (r, n, k), shares memory
+        y = x.transpose(1, 0, 2)  # (r, n, k)
+        return np.matmul(y, y.transpose(0, 2, 1))
+    t = torch.from_numpy(x).transpose(0, 1)  # (r, n, k), shares memory
     return torch.bmm(t, t.transpose(1, 2)).numpy()  # (r, n, n)
 
 
@@ -197,14 +198,19 @@ def _bounds(g: _Group, keep: Sequence[int] = ()) -> _Bounds:
     heads = list(range(n))
     for b, q0, q1 in g.spans(rows):
         k0, k1 = g.extent(heads, b, slice(q0, q1))
-        x = g.gather(heads, b, slice(q0, q1), k0, k1)  # (r, n, k) float32
-        s = x.sum(axis=-1, dtype=np.float64)  # (r, n); finite exactly when every weight of the row is
+        root = np.empty((n, q1 - q0, k1 - k0), np.float32)  # (n, r, k) square roots of the weights
+        s = np.empty((n, q1 - q0))  # (n, r) row sums, float64: finite exactly when every weight of the row is
+        for i in heads:
+            w, j = g.maps[i]
+            src = w[b, j, q0:q1, k0:k1]  # (r, k), a view
+            s[i] = src.sum(axis=-1, dtype=np.float64)
+            np.sqrt(src, out=root[i])
+        s = s.T  # (r, n)
         good = np.isfinite(s) & (s > 0)  # (r, n)
         if not good.all():
-            x[~good] = 0.0
-        np.sqrt(x, out=x)
-        bc = _gram(x)  # (r, n, n): Bhattacharyya coefficients before normalising
-        del x
+            root.transpose(1, 0, 2)[~good] = 0.0
+        bc = _gram(root)  # (r, n, n): Bhattacharyya coefficients before normalising
+        del root
         scale = np.where(good, 1.0 / np.sqrt(np.where(good, s, 1.0)), 0.0).astype(np.float32)  # (r, n)
         bc *= scale[:, :, None]
         bc *= scale[:, None, :]

@@ -248,3 +248,19 @@ def test_sample_and_error_options_fail_at_the_door():
                          ({"confidence": 1.0}, "confidence")):
         with pytest.raises(OptionError, match=word):
             head_distances(recs, **kwargs)
+
+
+def test_lowered_float32_matmul_precision_does_not_loosen_the_bounds():
+    # torch may trade float32 matmul precision for speed when asked; the bounds then use numpy's product
+    from attnscope.analyses.similarity import distance_bounds
+
+    recs = _planted_maps(4)
+    ref = _brute(recs)  # reference: scipy jensenshannon on every row
+    before = torch.get_float32_matmul_precision()
+    try:
+        torch.set_float32_matmul_precision("medium")
+        low, high = (f.to_numpy() for f in distance_bounds(recs))
+    finally:
+        torch.set_float32_matmul_precision(before)
+    assert (low <= ref + 1e-12).all() and (ref <= high + 1e-12).all()
+    np.testing.assert_allclose(low, distance_bounds(recs)[0].to_numpy(), atol=1e-6)
