@@ -213,10 +213,15 @@ def test_upper_bound_holds_for_near_copies():
     assert 0 < ref and low <= ref <= high
 
 
-def test_keys_left_out_only_where_every_weight_is_zero():
+@pytest.mark.parametrize("piece_rows", [3, 1000])
+def test_keys_left_out_only_where_every_weight_is_zero(monkeypatch, piece_rows):
     # windows, left padding, a leaky head the mask does not admit, a NaN row and an all-zero row: the passes
-    # skip key columns by reading the weights, so every variant must match brute-force scipy
+    # skip key columns by reading the weights, so every variant must match brute-force scipy; pieces of a few
+    # rows, as at scale (the piece size is the only thing changed)
+    from attnscope.analyses import similarity
     from attnscope.records import AttentionRecord, HeadSums
+
+    monkeypatch.setattr(similarity, "_PIECE_BYTES", piece_rows * 4 * 4 * 70 * 2)
 
     rng = np.random.default_rng(2)
     tq = tk = 70
@@ -264,3 +269,21 @@ def test_lowered_float32_matmul_precision_does_not_loosen_the_bounds():
         torch.set_float32_matmul_precision(before)
     assert (low <= ref + 1e-12).all() and (ref <= high + 1e-12).all()
     np.testing.assert_allclose(low, distance_bounds(recs)[0].to_numpy(), atol=1e-6)
+
+
+def test_near_copies_one_rounding_step_apart_are_exact():
+    # head 1 is head 0 with weights moved by one float32 step: the distance is ~1e-8, where a difference of
+    # entropies loses every digit; the exact pass recomputes such rows term by term (reference: scipy)
+    from attnscope.analyses.heads import duplicate_heads
+    from attnscope.records import AttentionRecord, HeadSums
+
+    rng = np.random.default_rng(5)
+    a = rng.dirichlet(np.ones(300), size=20).astype(np.float32)  # (Tq, Tk)
+    b = a.copy()
+    b[:, ::7] = np.nextafter(b[:, ::7], np.float32(1))
+    w = np.stack([a, b])[None]  # (B, H, Tq, Tk)
+    rec = AttentionRecord("blk", "self", w, None, False, HeadSums.zeros(2), w.shape, (0, 1))
+    ref = np.mean([jensenshannon(p, q, base=2) for p, q in zip(a.astype(np.float64), b.astype(np.float64))])
+    assert 0 < ref < 1e-6
+    assert head_distances([rec], exact=True).iloc[0, 1] == pytest.approx(ref, rel=1e-6, abs=1e-15)
+    assert duplicate_heads([rec], max_distance=0.01)[0].distance == pytest.approx(ref, rel=1e-6, abs=1e-15)
