@@ -16,8 +16,10 @@ ratio is a function of ``t`` alone that runs from ``ln 2`` (``t → 0`` or ``∞
 of the sums lies in ``[ln 2, 1]`` too. In bits, ``h² ≤ JS₂ ≤ h² / ln 2``, so each row's distance lies in
 ``[h, h / √ln 2]`` and so does the mean over rows: ``mean h ≤ distance ≤ 1.2011 · mean h``. Every ``BC``
 of every head pair on a row is one matrix product of the heads' square-rooted rows, which is what makes
-:func:`distance_bounds` cheap; :func:`~attnscope.analyses.heads.duplicate_heads` uses the lower bound to
-rule out far pairs before it computes the exact distance of the rest.
+:func:`distance_bounds` cheap (float32, over the keys the rows reach; ``h`` is rounded down past the product's
+rounding error and the upper bound widened by as much); :func:`~attnscope.analyses.heads.duplicate_heads` uses
+the lower bound to rule out far pairs before it computes the exact distance of the rest, and
+:func:`head_distances` the two bounds and a sample of exact rows for its estimate.
 
 >>> import numpy as np
 >>> from attnscope.records import AttentionRecord, HeadSums
@@ -38,7 +40,6 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import torch
-from scipy.special import rel_entr
 
 from attnscope.errors import OptionError
 from attnscope.records import AttentionRecord
@@ -61,14 +62,15 @@ def _records(cap: Any) -> Sequence[AttentionRecord]:
 
 
 def _slack(tk: int) -> float:
-    """How far a float32 Bhattacharyya coefficient of rows of *tk* keys may be from the exact one, doubled.
+    """Twice the largest error of a float32 Bhattacharyya coefficient ``1 − h²`` of rows of *tk* keys.
 
     Rounding of the inputs' square roots (``u = 2⁻²⁴`` each), of the float32 dot product of ``k ≤ tk`` terms
     (at most ``k·u`` times the sum of their sizes, which is at most 1 after normalising, in any summation
-    order; N. J. Higham, *Accuracy and Stability of Numerical Algorithms*, 2nd ed., SIAM 2002, §3.1) and of
-    the normalisation (four roundings): at most ``(tk + 6)·u·(1 + 10⁻⁴)``, which is below ``(tk + 8)·u``.
+    order; N. J. Higham, *Accuracy and Stability of Numerical Algorithms*, 2nd ed., SIAM 2002, §3.1), of the
+    normalisation (four roundings) and of ``1 − slack − BC`` (two): at most ``(tk + 8)·u·(1 + 10⁻⁴)``, below
+    ``(tk + 16)·u`` up to 80 000 keys.
     """
-    return (tk + 8) * 2.0 ** -23
+    return (tk + 16) * 2.0 ** -23
 
 
 @dataclass
@@ -245,6 +247,8 @@ def _pair_rows(g: _Group, pairs: Sequence[tuple[int, int]],
     comes out below ``_CLOSE`` nats (near-copies, where that difference loses digits) it is recomputed term by
     term as ``½ Σ (p log(p/m) + q log(q/m))``, as ``scipy.special.rel_entr`` does.
     """
+    from scipy.special import rel_entr
+
     if not pairs:
         return
     heads = sorted({i for p in pairs for i in p})
@@ -333,7 +337,7 @@ def distance_bounds(cap: Any, item: int | None = None) -> tuple[pd.DataFrame, pd
     The lower bound is the mean over rows of each row's Hellinger distance ``h = √(1 − Σ_k √(p_k q_k))``,
     computed in float32 and rounded down past its rounding error (``h̃ ≤ h``); the upper bound the mean of
     ``min(1, 1.2011·√(h̃² + 2·slack))``, which covers ``1.2011·h`` (see the module docstring for the
-    inequality; ``slack ≈ (Tk + 8)·2⁻²³`` is twice the largest float32 error of ``Σ √(p q)``). Same index,
+    inequality; ``slack = (Tk + 16)·2⁻²³`` is twice the largest float32 error of ``Σ √(p q)``). Same index,
     columns and NaNs as :func:`head_distances`.
     """
     labels, groups = _groups(_records(cap), item)
