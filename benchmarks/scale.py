@@ -172,6 +172,10 @@ def main(argv: list[str] | None = None) -> None:
     print(f"kept maps: {kept / mib:.0f} MiB. The first floor row is what any comparison of every head pair on every "
           "row costs at least; the second, the same over the keys causal rows reach (what the analyses compute).")
     print("dashboard(cap): building the widget in Python; the browser's first render is checked in tests/views.")
+    if "head_distances" in steps:
+        est = head_distances(cap)
+        print(f"head_distances: estimate from {est.attrs['sample']} sampled rows, stated error bound "
+              f"{est.attrs['error_bound']:.4f} (largest over pairs, 95 % per pair).")
 
 
 def _nograd(fn: Callable[[], Any]) -> Any:
