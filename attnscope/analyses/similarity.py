@@ -406,7 +406,8 @@ def head_distances(cap: Any, item: int | None = None, *, exact: bool = False, sa
             more rows than the sample, the distance is estimated (see below).
         sample: rows drawn (without replacement, the same rows for every pair) for the estimate; default 64.
         error: instead of *sample*, the largest error wanted: the sample is the fewest rows whose stated
-            bound (below) is at most *error* for every pair, given the spreads measured in the first pass.
+            bound (below) is at most *error* for every pair, given the spreads measured in the first pass
+            (every row, computed exactly, when that takes all rows or more first-pass values than 128 MiB hold).
         confidence: the probability the stated error bound holds for each pair.
         seed: seed of the row draw.
 
@@ -464,7 +465,9 @@ def head_distances(cap: Any, item: int | None = None, *, exact: bool = False, sa
         spread = first.spread[ia, ib].astype(np.float64)  # (P,)
         m = len(order) if error is None else _rows_for(error, float(spread.max(initial=0.0)), confidence)
         block = np.full((n, n), np.nan)
-        if m >= rows:
+        if not pairs:
+            pass
+        elif m >= rows:
             total, count = _exact_sums(g, pairs)
             block[ia, ib] = block[ib, ia] = _mean(total, count)
         else:

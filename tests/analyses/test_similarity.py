@@ -287,3 +287,16 @@ def test_near_copies_one_rounding_step_apart_are_exact():
     assert 0 < ref < 1e-6
     assert head_distances([rec], exact=True).iloc[0, 1] == pytest.approx(ref, rel=1e-6, abs=1e-15)
     assert duplicate_heads([rec], max_distance=0.01)[0].distance == pytest.approx(ref, rel=1e-6, abs=1e-15)
+
+
+def test_estimate_with_a_lone_head_of_its_shape():
+    # a record whose maps share no shape with another head's: its row and column stay NaN off the diagonal
+    from attnscope.records import AttentionRecord, HeadSums
+
+    recs = _planted_maps(6, heads=12, tq=100, tk=100)
+    w = np.full((1, 1, 100, 30), 1 / 30, np.float32)  # (B, H, Tq, Tk): one head of another shape
+    recs.append(AttentionRecord("other", "cross", w, None, False, HeadSums.zeros(1), w.shape, (0,), call=2))
+    est = head_distances(recs, sample=16).to_numpy()
+    assert np.isnan(est[12, :12]).all() and est[12, 12] == 0.0
+    ref = _brute(recs[:2])  # reference: scipy jensenshannon on the twelve same-shaped heads
+    assert np.abs(est[:12, :12] - ref).max() <= head_distances(recs, sample=16).attrs["error_bound"] + 1e-9
