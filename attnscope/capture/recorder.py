@@ -16,7 +16,7 @@ from typing import Any
 import torch
 from torch import nn
 
-from attnscope.capture import rules
+from attnscope.capture import masks, rules
 from attnscope.capture.discovery import ModelMap
 from attnscope.errors import MemoryBudgetError, OptionError
 from attnscope.records import AttentionRecord, HeadSums, ResidualRecord
@@ -46,6 +46,7 @@ class Frame:
     owner: Frame | None = None
     others: tuple = ()  # floating tensor arguments that may carry another sequence (rules.other_sequences)
     consumed_other: bool = False  # a child module consumed one of ``others``: keys come from another sequence
+    mask_arg: torch.Tensor | None = None  # the float ``attention_mask`` an attention module got (rules.mask_argument)
 
     def target(self) -> Frame:
         """The frame a record of an attention call in this frame is named after."""
@@ -94,6 +95,8 @@ class Recorder:
         #: a tensor the model goes on using (eager paths keep the model's own weights, copying nothing)
         self.borrowed: list[tuple[str, torch.Tensor, int]] = []
         self._tls = threading.local()
+        #: id(mask) -> (mask, version, shape, compact allowed): every layer gets the same mask tensor
+        self._mask_memo: dict[int, tuple[torch.Tensor, int, tuple, Any]] = {}
 
     # ---------------------------------------------------------------- hooks: who is calling
     def _stack(self) -> list[Frame]:
@@ -117,6 +120,7 @@ class Recorder:
             owner_name = self.map.owner.get(name)
             if owner_name == name:
                 frame.owner = frame
+                frame.mask_arg = rules.mask_argument(module, args, kwargs)
             elif owner_name is not None:
                 frame.owner = next((f for f in reversed(stack) if f.name == owner_name), None) or (
                     parent.owner if parent else None)
@@ -151,6 +155,29 @@ class Recorder:
         return stack[-1] if stack else None
 
     # ---------------------------------------------------------------- making records
+    def allowed_of_softmax(self, frame: Frame, scores: torch.Tensor) -> torch.Tensor | None:
+        """The compact allowed mask of ``(B, H, Tq, Tk)`` *scores* a softmax in *frame* received.
+
+        From the ``attention_mask`` the attention module was called with when it fits and agrees with the
+        scores (worked out once per mask tensor, not once per layer), else from the scores themselves.
+        """
+        mask = frame.target().mask_arg
+        if mask is not None:
+            shape = tuple(scores.shape)
+            memo = self._mask_memo.get(id(mask))
+            if memo is None or memo[0] is not mask or memo[1] != mask._version or memo[2] != shape:
+                if len(self._mask_memo) > 8:
+                    self._mask_memo.clear()
+                memo = self._mask_memo[id(mask)] = (mask, mask._version, shape, masks.added_mask_allowed(mask, shape))
+            allowed = memo[3]
+            if allowed is not masks.UNFIT and masks.agrees_with_scores(allowed, scores):
+                return allowed
+        return masks.allowed_from_scores(scores)
+
+    def forget_masks(self) -> None:
+        """Drop the model's mask tensors held for :meth:`allowed_of_softmax` (when the capture closes)."""
+        self._mask_memo.clear()
+
     def kept_heads(self, h: int, name: str) -> tuple[int, ...]:
         """The head indices to keep of a call with *h* heads in module *name*."""
         if self.heads is None:

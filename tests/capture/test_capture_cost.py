@@ -189,3 +189,65 @@ def test_recomputed_maps_built_in_pieces_equal_an_independent_softmax(monkeypatc
     w = (q @ k.transpose(-2, -1) / math.sqrt(8)).masked_fill(~causal, float("-inf")).softmax(-1)  # independent
     np.testing.assert_allclose(cap.attention[0].weights, w.numpy(), atol=1e-6)
     assert torch.equal(out, F.scaled_dot_product_attention(q, k, v, is_causal=True))  # untouched by default
+
+
+class MaskedBlockAttention(nn.Module):
+    """Hand-written attention that adds the ``attention_mask`` it is given and, optionally, masks more inside."""
+
+    def __init__(self, inner_causal: bool) -> None:
+        super().__init__()
+        self.inner_causal = inner_causal
+        self.n_head = 2
+
+    def forward(self, x, attention_mask=None):  # x (B, T, D); attention_mask (B or 1, 1, Tq or 1, Tk) float
+        b, t, d = x.shape
+        q = x.view(b, t, 2, d // 2).transpose(1, 2)  # (B, H, T, E)
+        scores = q @ q.transpose(-2, -1)  # (B, H, T, T)
+        if self.inner_causal:
+            scores = scores.masked_fill(~torch.ones(t, t, dtype=torch.bool).tril(), torch.finfo(x.dtype).min)
+        if attention_mask is not None:
+            scores = scores + attention_mask
+        w = F.softmax(scores, dim=-1)
+        return (w @ q).transpose(1, 2).reshape(b, t, d)
+
+
+def _padding(b: int, t: int, full: bool) -> torch.Tensor:
+    keep = torch.ones(b, t, dtype=torch.bool)
+    keep[1, 4:] = False  # the second item is padded after 4 tokens
+    allowed = keep[:, None, None, :] & (torch.ones(t, t, dtype=torch.bool).tril() if full else True)
+    return torch.zeros(allowed.shape).masked_fill(~allowed, torch.finfo(torch.float32).min)
+
+
+@pytest.mark.parametrize(("inner_causal", "full"), [(False, True), (True, False), (True, True)])
+def test_softmax_masks_from_the_mask_argument_or_the_scores_equal_an_independent_recomputation(inner_causal, full):
+    torch.manual_seed(0)
+    b, t = 3, 6
+    block = MaskedBlockAttention(inner_causal)
+    x = torch.randn(b, t, 8)
+    mask = _padding(b, t, full)  # (B, 1, T, T) full mask, or (B, 1, 1, T) padding only
+    with torch.no_grad(), attnscope.capture(block, residual=False) as cap:
+        block(x, attention_mask=mask)
+    # independent: a key is allowed where the causal rule (when the block applies one) and the mask allow it
+    expect = ~(mask <= -1e4).expand(b, 1, t, t)
+    if inner_causal:
+        expect = expect & torch.ones(t, t, dtype=torch.bool).tril()
+    rec = cap.attention[0]
+    np.testing.assert_array_equal(rec.allowed_full(), np.broadcast_to(expect.numpy(), rec.weights.shape))
+    assert rec.causal == (inner_causal or full)
+
+
+def test_a_mask_argument_that_disagrees_with_the_scores_is_not_trusted():
+    """A mask argument the block does not apply (it masks causally on its own) must not be taken for the mask."""
+
+    class IgnoringMaskAttention(MaskedBlockAttention):
+        def forward(self, x, attention_mask=None):
+            return super().forward(x, None)
+
+    torch.manual_seed(0)
+    block = IgnoringMaskAttention(inner_causal=True)
+    unrelated = torch.zeros(2, 1, 5, 5)  # allows every key: contradicts the scores of every map
+    with torch.no_grad(), attnscope.capture(block, residual=False) as cap:
+        block(torch.randn(2, 5, 8), attention_mask=unrelated)
+    causal = torch.ones(5, 5, dtype=torch.bool).tril()  # common practice, no source: the causal rule j <= i
+    np.testing.assert_array_equal(cap.attention[0].allowed_full()[0, 0], causal.numpy())
+    assert cap.attention[0].causal
