@@ -188,13 +188,15 @@ class Recorder:
 
     def record(self, frame: Frame, kind: str, shape: tuple[int, int, int, int], heads: tuple[int, ...],
                allowed: torch.Tensor | None, causal: bool, source: str, offset: int, compute: Compute,
-               replace_at: int | None = None, builds: bool = False) -> int:
+               replace_at: int | None = None, builds: bool = False, scores: torch.Tensor | None = None) -> int:
         """Keep one call (maps or statistics) and return its index in :attr:`attention`.
 
         ``allowed`` is the compact ``(B or 1, H or 1, Tq, Tk)`` bool mask or None; ``replace_at`` refines an
         earlier record of the same call (a ``tap`` of a softmax's output). ``builds`` says that *compute* makes
         the weights anew (a recomputation): kept maps are then built piece by piece into one array, so no
-        whole-map temporary (scores beside weights) exists at any time.
+        whole-map temporary (scores beside weights) exists at any time. ``scores`` are the ``(B, H, Tq, Tk)``
+        softmax input of weights that exist already (the softmax path): ``keep="stats"`` then takes the entropy
+        from them without a logarithm per weight (:func:`~attnscope.stats.head_sums`).
         """
         b, _, tq, tk = shape
         target = frame.target()
@@ -224,7 +226,7 @@ class Recorder:
             if replace_at is None:
                 self.counters.kept_bytes += size
         else:
-            stats = _reduce(compute, b, heads, allowed, offset, tq * tk * 4)
+            stats = _reduce(compute, b, shape[1], heads, allowed, offset, tq * tk * 4, builds, scores)
             kept = None
         # keep="stats" keeps O(heads) numbers per call, so no (Tq, Tk) mask either: the statistics already hold
         # what the mask meant (leak_mass, rows), and ``causal`` says whether it was causal.
@@ -283,9 +285,17 @@ def _note_consumed(parent: Frame, args: tuple) -> None:
             frame.consumed_other = hit
 
 
-def _reduce(compute: Compute, b: int, heads: tuple[int, ...], allowed: torch.Tensor | None, offset: int,
-            map_bytes: int) -> HeadSums:
-    """keep="stats": reduce a call to per-head sums, building at most ``_STATS_CHUNK_BYTES`` of map at once."""
+def _reduce(compute: Compute, b: int, h: int, heads: tuple[int, ...], allowed: torch.Tensor | None, offset: int,
+            map_bytes: int, builds: bool = True, scores: torch.Tensor | None = None) -> HeadSums:
+    """keep="stats": reduce a call to per-head sums, building at most ``_STATS_CHUNK_BYTES`` of map at once.
+
+    Weights that exist already (``builds`` False) are reduced in one call when every head is kept: *compute*
+    then hands out a view, and :func:`~attnscope.stats.head_sums` walks it in cache-sized pieces itself.
+    """
+    if not builds and b and heads == tuple(range(h)):
+        whole = compute(slice(None), list(heads))  # (B, H, Tq, Tk)  a view of the existing weights
+        if whole.dtype == torch.float32 and whole.is_contiguous():
+            return head_sums(whole, allowed, offset, scores)
     per_item = len(heads) * map_bytes
     b_step = max(1, _STATS_CHUNK_BYTES // max(per_item, 1))
     h_step = len(heads) if b_step > 1 else max(1, min(len(heads), _STATS_CHUNK_BYTES // max(map_bytes, 1)))
@@ -300,7 +310,8 @@ def _reduce(compute: Compute, b: int, heads: tuple[int, ...], allowed: torch.Ten
             if a is not None:
                 a = a if a.shape[0] == 1 else a[sl]
                 a = a[:, positions] if a.shape[1] > 1 else a
-            sums = sums.merge(head_sums(compute(sl, hs), a, offset))
+            part = None if scores is None else scores[sl][:, hs]  # (b, h, Tq, Tk)  a copy of the piece's scores
+            sums = sums.merge(head_sums(compute(sl, hs), a, offset, part))
         groups.append(sums)
     return groups[0] if len(groups) == 1 else HeadSums.concat(groups)
 

@@ -251,3 +251,35 @@ def test_a_mask_argument_that_disagrees_with_the_scores_is_not_trusted():
     causal = torch.ones(5, 5, dtype=torch.bool).tril()  # common practice, no source: the causal rule j <= i
     np.testing.assert_array_equal(cap.attention[0].allowed_full()[0, 0], causal.numpy())
     assert cap.attention[0].causal
+
+
+@pytest.mark.parametrize("scale", [1.0, 40.0])
+def test_entropy_from_scores_equals_brute_force_with_minus_inf_masks_and_large_scores(monkeypatch, scale):
+    monkeypatch.setattr(attnscope.stats, "PIECE_BYTES", 400)  # many pieces, some of one row
+    torch.manual_seed(0)
+    b, h, tq, tk = 2, 3, 7, 9
+    allowed = torch.ones(tq, tk, dtype=torch.bool).tril(diagonal=2)  # (Tq, Tk)
+    scores = (torch.randn(b, h, tq, tk) * scale).masked_fill(~allowed, float("-inf"))  # -inf, as hand-written code
+    scores[1, 0, 5] = float("-inf")  # a row with no allowed key: NaN weights, left out
+    w = scores.softmax(-1)  # (B, H, Tq, Tk)
+    got = head_sums(w, allowed[None, None], 2, scores=scores).means()
+    expect = brute_means(w.numpy(), allowed.numpy(), 2)  # scipy's entr on the weights, row by row
+    for k, v in expect.items():
+        np.testing.assert_allclose(got[k], v, rtol=1e-6, atol=1e-6, err_msg=k)
+    assert list(head_sums(w, allowed[None, None], 2, scores=scores).nonfinite) == [1, 0, 0]  # the all -inf row
+
+
+@pytest.mark.parametrize("heads", [None, [1, 3]])
+def test_stats_of_a_softmax_call_equal_brute_force_on_its_maps_with_chosen_heads(monkeypatch, heads):
+    recorder = importlib.import_module("attnscope.capture.recorder")
+    monkeypatch.setattr(recorder, "_STATS_CHUNK_BYTES", 2 * 4 * 40 * 40 * 4)  # pieces of two batch items
+    model = gpt2("eager")
+    ids = torch.randint(0, 50, (5, 40))
+    with torch.no_grad(), attnscope.capture(model, keep="maps", heads=heads) as maps:
+        model(ids)
+    with torch.no_grad(), attnscope.capture(model, keep="stats", heads=heads) as stats:
+        model(ids)
+    for rec, srec in zip(maps.attention, stats.attention):
+        expect = brute_means(rec.weights, rec.allowed, rec.query_offset)  # from the kept maps, brute force
+        for k, v in expect.items():
+            np.testing.assert_allclose(srec.stats.means()[k], v, rtol=1e-6, atol=1e-6, err_msg=k)

@@ -51,6 +51,7 @@ def on_call(rec: Recorder, func, args, kwargs):
     heads = rec.kept_heads(h, target.name)
     causal = kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset)
     index = rec.record(frame, kind, (b, h, tq, tk), heads, allowed, causal, SOURCE, offset,
-                       lambda sl, hs: take(w, sl, hs, shared=True))  # the model keeps using it
+                       lambda sl, hs: take(w, sl, hs, shared=True),  # the model keeps using it
+                       scores=scores if scores.dtype == w.dtype == torch.float32 else None)
     target.last_softmax = (out, index)
     return out
