@@ -48,6 +48,17 @@ class Frame:
     consumed_other: bool = False  # a child module consumed one of ``others``: keys come from another sequence
     mask_arg: torch.Tensor | None = None  # the float ``attention_mask`` an attention module got (rules.mask_argument)
 
+    def release(self) -> None:
+        """Drop what the call held (its softmax output, mask, candidate sequences) when it returns.
+
+        An attention module's frame is its own owner, a reference cycle: without this the model's weights and
+        scores of every layer would live until Python's cycle collector runs, and memory would not be reused.
+        """
+        self.owner = None
+        self.last_softmax = None
+        self.mask_arg = None
+        self.others = ()
+
     def target(self) -> Frame:
         """The frame a record of an attention call in this frame is named after."""
         return self.owner or self
@@ -140,6 +151,7 @@ class Recorder:
             stack = self._stack()
             while stack:  # always_call=True: also runs when forward raised, so the stack stays balanced
                 frame = stack.pop()
+                frame.release()
                 if frame.module is module:
                     break
             if is_block and self.open and not self.muted:
@@ -174,9 +186,13 @@ class Recorder:
                 return allowed
         return masks.allowed_from_scores(scores)
 
-    def forget_masks(self) -> None:
-        """Drop the model's mask tensors held for :meth:`allowed_of_softmax` (when the capture closes)."""
+    def release(self) -> None:
+        """Drop every model tensor the capture still holds (when it closes): masks of :meth:`allowed_of_softmax`
+        and the frames a forward that raised left on this thread's stack."""
         self._mask_memo.clear()
+        for frame in self._stack():
+            frame.release()
+        self._stack().clear()
 
     def kept_heads(self, h: int, name: str) -> tuple[int, ...]:
         """The head indices to keep of a call with *h* heads in module *name*."""

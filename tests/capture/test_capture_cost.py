@@ -3,8 +3,10 @@ the opt-in ``sdpa="weights"`` (output computed from the weights capture builds) 
 
 from __future__ import annotations
 
+import gc
 import importlib
 import math
+import weakref
 
 import numpy as np
 import pytest
@@ -283,3 +285,25 @@ def test_stats_of_a_softmax_call_equal_brute_force_on_its_maps_with_chosen_heads
         expect = brute_means(rec.weights, rec.allowed, rec.query_offset)  # from the kept maps, brute force
         for k, v in expect.items():
             np.testing.assert_allclose(srec.stats.means()[k], v, rtol=1e-6, atol=1e-6, err_msg=k)
+
+
+class WatchedAttention(nn.Module):
+    """Hand-written attention that keeps a weak reference to its softmax output, to see when it is freed."""
+
+    def forward(self, x):  # (B, T, D)
+        w = (x @ x.transpose(-2, -1)).unsqueeze(1).softmax(dim=-1)  # (B, 1, T, T)
+        self.seen = weakref.ref(w)
+        return (w @ x.unsqueeze(1)).squeeze(1)
+
+
+def test_keep_stats_frees_the_model_weights_as_the_forward_goes_without_the_cycle_collector():
+    model = WatchedAttention()
+    gc.collect()
+    gc.disable()  # memory must be reused layer by layer, not when Python's cycle collector happens to run
+    try:
+        with torch.no_grad(), attnscope.capture(model, keep="stats", residual=False) as cap:
+            model(torch.randn(2, 5, 8))
+            assert model.seen() is None  # freed as soon as the module returned
+        assert cap.attention[0].weights is None and cap.attention[0].stats is not None
+    finally:
+        gc.enable()
