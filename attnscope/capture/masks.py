@@ -201,8 +201,11 @@ def sdpa_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | Non
         if m.dtype == torch.bool:
             scores.masked_fill_(~m, float("-inf"))
         else:
-            scores = scores + m.float()  # not in place: the mask may broadcast to a larger shape
-    weights = torch.softmax(scores, dim=-1)
+            if torch.broadcast_shapes(scores.shape, m.shape) == scores.shape:
+                scores.add_(m.float())  # (B, H, Tq, Tk)  in place: no second map
+            else:
+                scores = scores + m.float()  # the mask broadcasts to a larger shape than the scores
+    weights = torch.softmax(scores, dim=-1, out=scores)  # in place (bit-equal): never scores beside weights
     empty = _empty_rows(m, is_causal, tq, tk)  # read off the (small) mask, never the full scores
     if empty is not None:
         weights.masked_fill_(empty, 0.0)  # softmax gives NaN there; the fused kernels give a zero output
