@@ -24,14 +24,17 @@ neighbour hits every case alike. Targets (from the project's issues):
 Floors, measured in the same run: what the peer's weights already cost (eager paths: the weights exist, so
 keeping them costs nothing beyond the peer); the plain forward plus recomputing 6 maps (fused path left
 bit-identical); the plain forward plus the statistics of 6 maps already in memory (``keep="stats"``).
-Memory: each mode runs in a fresh subprocess; the figure is the peak RSS of a captured forward (its results
-kept) minus the peak RSS of a plain forward of the same process (Linux's VmHWM, reset before each).
+Memory: each mode runs in a fresh subprocess with glibc told to return every freed block of 128 KiB or more
+(``benchmarks.scale.EXACT_RSS``); the figure is the peak RSS of a captured forward (its results kept) minus the
+peak RSS of a plain forward of the same process (Linux's VmHWM, reset before each): the plain forward's own
+peak is the floor every forward pays.
 """
 
 from __future__ import annotations
 
 import argparse
 import json
+import os
 import statistics
 import subprocess
 import sys
@@ -181,7 +184,10 @@ def memory(kind: str, keep: str, batch: int, seq: int) -> tuple[int, int]:
             "plain = b._peak_of(lambda: b.forward(m, a));"
             f"cap = b._peak_of(lambda: b.captured(m, a, {keep!r}));"
             f"print(json.dumps([cap - plain, b.kept_bytes(b.captured(m, a, {keep!r}))]))")
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    from benchmarks.scale import EXACT_RSS  # glibc returns freed blocks: RSS follows live memory
+
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
+                         env={**os.environ, **EXACT_RSS})
     peak, kept = json.loads(out.stdout.strip().splitlines()[-1])
     return int(peak), int(kept)
 
