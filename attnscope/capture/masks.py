@@ -180,12 +180,14 @@ def _empty_rows(m: torch.Tensor | None, is_causal: bool, tq: int, tk: int) -> to
 
 
 def sdpa_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | None = None,
-                 is_causal: bool = False, scale: float | None = None, enable_gqa: bool = False) -> torch.Tensor:
+                 is_causal: bool = False, scale: float | None = None, enable_gqa: bool = False,
+                 with_scores: bool = False):
     """softmax(Q Kᵀ · scale + mask) with the semantics of ``F.scaled_dot_product_attention``, in float32.
 
     ``q`` is ``(B, Hq, Tq, E)``, ``k`` is ``(B, Hk, Tk, E)``; with ``enable_gqa`` each key head serves
     ``Hq // Hk`` consecutive query heads. Rows with no allowed key are all zeros (the fused kernels return a
-    zero output there). Returns ``(B, Hq, Tq, Tk)``.
+    zero output there). Returns ``(B, Hq, Tq, Tk)``, or ``(weights, masked scores)`` with ``with_scores``
+    (for statistics that take the entropy from the scores, :func:`attnscope.stats.head_sums`).
     """
     q = q.detach().float()
     k = k.detach().float()
@@ -205,8 +207,9 @@ def sdpa_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | Non
                 scores.add_(m.float())  # (B, H, Tq, Tk)  in place: no second map
             else:
                 scores = scores + m.float()  # the mask broadcasts to a larger shape than the scores
+    kept = scores.clone() if with_scores else None  # (B, H, Tq, Tk)
     weights = torch.softmax(scores, dim=-1, out=scores)  # in place (bit-equal): never scores beside weights
     empty = _empty_rows(m, is_causal, tq, tk)  # read off the (small) mask, never the full scores
     if empty is not None:
         weights.masked_fill_(empty, 0.0)  # softmax gives NaN there; the fused kernels give a zero output
-    return weights
+    return (weights, kept) if with_scores else weights

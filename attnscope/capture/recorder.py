@@ -204,7 +204,8 @@ class Recorder:
 
     def record(self, frame: Frame, kind: str, shape: tuple[int, int, int, int], heads: tuple[int, ...],
                allowed: torch.Tensor | None, causal: bool, source: str, offset: int, compute: Compute,
-               replace_at: int | None = None, builds: bool = False, scores: torch.Tensor | None = None) -> int:
+               replace_at: int | None = None, builds: bool = False, scores: torch.Tensor | None = None,
+               scored: Callable[[slice, list], tuple[torch.Tensor, torch.Tensor]] | None = None) -> int:
         """Keep one call (maps or statistics) and return its index in :attr:`attention`.
 
         ``allowed`` is the compact ``(B or 1, H or 1, Tq, Tk)`` bool mask or None; ``replace_at`` refines an
@@ -212,7 +213,8 @@ class Recorder:
         the weights anew (a recomputation): kept maps are then built piece by piece into one array, so no
         whole-map temporary (scores beside weights) exists at any time. ``scores`` are the ``(B, H, Tq, Tk)``
         softmax input of weights that exist already (the softmax path): ``keep="stats"`` then takes the entropy
-        from them without a logarithm per weight (:func:`~attnscope.stats.head_sums`).
+        from them without a logarithm per weight (:func:`~attnscope.stats.head_sums`); ``scored`` is a *compute*
+        that builds ``(weights, masked scores)`` for the same purpose (a recomputation).
         """
         b, _, tq, tk = shape
         target = frame.target()
@@ -242,7 +244,7 @@ class Recorder:
             if replace_at is None:
                 self.counters.kept_bytes += size
         else:
-            stats = _reduce(compute, b, shape[1], heads, allowed, offset, tq * tk * 4, builds, scores)
+            stats = _reduce(compute, b, shape[1], heads, allowed, offset, tq * tk * 4, builds, scores, scored)
             kept = None
         # keep="stats" keeps O(heads) numbers per call, so no (Tq, Tk) mask either: the statistics already hold
         # what the mask meant (leak_mass, rows), and ``causal`` says whether it was causal.
@@ -302,7 +304,8 @@ def _note_consumed(parent: Frame, args: tuple) -> None:
 
 
 def _reduce(compute: Compute, b: int, h: int, heads: tuple[int, ...], allowed: torch.Tensor | None, offset: int,
-            map_bytes: int, builds: bool = True, scores: torch.Tensor | None = None) -> HeadSums:
+            map_bytes: int, builds: bool = True, scores: torch.Tensor | None = None,
+            scored: Callable[[slice, list], tuple[torch.Tensor, torch.Tensor]] | None = None) -> HeadSums:
     """keep="stats": reduce a call to per-head sums, building at most ``_STATS_CHUNK_BYTES`` of map at once.
 
     Weights that exist already (``builds`` False) are reduced in one call when every head is kept: *compute*
@@ -326,8 +329,12 @@ def _reduce(compute: Compute, b: int, h: int, heads: tuple[int, ...], allowed: t
             if a is not None:
                 a = a if a.shape[0] == 1 else a[sl]
                 a = a[:, positions] if a.shape[1] > 1 else a
-            part = None if scores is None else scores[sl][:, hs]  # (b, h, Tq, Tk)  a copy of the piece's scores
-            sums = sums.merge(head_sums(compute(sl, hs), a, offset, part))
+            if scored is not None:
+                w, part = scored(sl, hs)  # (b, h, Tq, Tk) each
+            else:
+                w = compute(sl, hs)
+                part = None if scores is None else scores[sl][:, hs]  # (b, h, Tq, Tk)  a copy of the piece's scores
+            sums = sums.merge(head_sums(w, a, offset, part))
         groups.append(sums)
     return groups[0] if len(groups) == 1 else HeadSums.concat(groups)
 

@@ -307,3 +307,28 @@ def test_keep_stats_frees_the_model_weights_as_the_forward_goes_without_the_cycl
         assert cap.attention[0].weights is None and cap.attention[0].stats is not None
     finally:
         gc.enable()
+
+
+@pytest.mark.parametrize("mask_kind", ["causal", "bool with an empty row", "float -inf"])
+def test_stats_of_recomputed_sdpa_calls_equal_brute_force_on_their_maps(mask_kind):
+    torch.manual_seed(0)
+    q, k, v = torch.randn(3, 4, 6, 8) * 3, torch.randn(3, 4, 6, 8) * 3, torch.randn(3, 4, 6, 8)
+    allowed = torch.ones(3, 1, 6, 6, dtype=torch.bool)
+    allowed[1, :, :, 4:] = False
+    allowed[2, :, 3] = False  # query 3 of item 2 sees no key: a zero row
+    mask = {"causal": None, "bool with an empty row": allowed,
+            "float -inf": torch.zeros(allowed.shape).masked_fill(~allowed, float("-inf"))}[mask_kind]
+
+    class Block(nn.Module):
+        def forward(self, q, k, v):
+            return F.scaled_dot_product_attention(q, k, v, attn_mask=mask, is_causal=mask is None)
+
+    block = Block()
+    with attnscope.capture(block, layers=[""], residual=False) as maps:
+        block(q, k, v)
+    with attnscope.capture(block, layers=[""], residual=False, keep="stats") as stats:
+        block(q, k, v)
+    rec = maps.attention[0]
+    expect = brute_means(rec.weights, rec.allowed, rec.query_offset)  # from the kept maps, brute force
+    for key, val in expect.items():
+        np.testing.assert_allclose(stats.attention[0].stats.means()[key], val, rtol=1e-6, atol=1e-6, err_msg=key)

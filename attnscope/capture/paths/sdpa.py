@@ -54,16 +54,18 @@ def on_call(rec: Recorder, func, args, kwargs):
     allowed = masks.compact(masks.sdpa_allowed(mask4, is_causal, tq, tk), (b, hq, tq, tk))
     heads = rec.kept_heads(hq, frame.target().name)
 
-    def compute(sl: slice, hs: list[int]):
+    def compute(sl: slice, hs: list[int], with_scores: bool = False):
         m = mask4
         if m is not None and m.dim() == 4:
             m = m[sl] if m.shape[0] == b else m
             m = m[:, hs] if m.shape[1] == hq else m
         kh = [h // rep for h in hs] if k4.shape[1] > 1 else [0]
-        return masks.sdpa_weights(q4[sl][:, hs], k4[sl][:, kh], m, is_causal, p.get("scale"))
+        return masks.sdpa_weights(q4[sl][:, hs], k4[sl][:, kh], m, is_causal, p.get("scale"),
+                                  with_scores=with_scores)
 
     causal = is_causal or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset))
-    rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute, builds=True)
+    rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute, builds=True,
+               scored=lambda sl, hs: compute(sl, hs, with_scores=True))
     return out
 
 
