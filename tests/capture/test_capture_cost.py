@@ -309,8 +309,9 @@ def test_keep_stats_frees_the_model_weights_as_the_forward_goes_without_the_cycl
         gc.enable()
 
 
+@pytest.mark.parametrize("sdpa", ["beside", "weights"])
 @pytest.mark.parametrize("mask_kind", ["causal", "bool with an empty row", "float -inf"])
-def test_stats_of_recomputed_sdpa_calls_equal_brute_force_on_their_maps(mask_kind):
+def test_stats_of_recomputed_sdpa_calls_equal_brute_force_on_their_maps(mask_kind, sdpa):
     torch.manual_seed(0)
     q, k, v = torch.randn(3, 4, 6, 8) * 3, torch.randn(3, 4, 6, 8) * 3, torch.randn(3, 4, 6, 8)
     allowed = torch.ones(3, 1, 6, 6, dtype=torch.bool)
@@ -326,7 +327,7 @@ def test_stats_of_recomputed_sdpa_calls_equal_brute_force_on_their_maps(mask_kin
     block = Block()
     with attnscope.capture(block, layers=[""], residual=False) as maps:
         block(q, k, v)
-    with attnscope.capture(block, layers=[""], residual=False, keep="stats") as stats:
+    with attnscope.capture(block, layers=[""], residual=False, keep="stats", sdpa=sdpa) as stats:
         block(q, k, v)
     rec = maps.attention[0]
     expect = brute_means(rec.weights, rec.allowed, rec.query_offset)  # from the kept maps, brute force
