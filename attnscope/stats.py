@@ -31,6 +31,7 @@ __all__ = ["PIECE_BYTES", "head_sums"]
 PIECE_BYTES = 1024**2
 
 _TINY = torch.finfo(torch.float32).tiny
+_LOWEST = torch.finfo(torch.float32).min
 
 
 @functools.lru_cache(maxsize=16)
@@ -41,7 +42,8 @@ def _distance_matrix(tq: int, tk: int, offset: int) -> torch.Tensor:
     return (q_pos[:, None] - k_pos[None, :]).abs()
 
 
-def head_sums(weights: torch.Tensor, allowed: torch.Tensor | None = None, query_offset: int = 0) -> HeadSums:
+def head_sums(weights: torch.Tensor, allowed: torch.Tensor | None = None, query_offset: int = 0,
+              scores: torch.Tensor | None = None) -> HeadSums:
     """Reduce attention weights to per-head sums over (batch, query) rows, in one pass over cache-sized pieces.
 
     Args:
@@ -50,6 +52,10 @@ def head_sums(weights: torch.Tensor, allowed: torch.Tensor | None = None, query_
         allowed: bool, broadcastable to ``(B, H, Tq, Tk)``, True where the mask lets a query see a key;
             ``None`` when no mask was applied.
         query_offset: absolute position of query 0 on the key axis, for ``mean_distance``.
+        scores: optional ``(B, H, Tq, Tk)`` float32 scores whose last-axis softmax *weights* are (masked scores
+            as the softmax received them). The entropy is then taken without a logarithm per weight: with
+            ``m`` the row's largest score, ``ln w_j = s_j - m + ln max(w)``, so
+            ``-sum w ln w = -sum w (s - m) - ln max(w) * sum w`` (one logarithm per row).
 
     Returns:
         :class:`~attnscope.records.HeadSums` with one entry per head.
@@ -58,6 +64,10 @@ def head_sums(weights: torch.Tensor, allowed: torch.Tensor | None = None, query_
     w_dtype = w.dtype if w.dtype in (torch.float32, torch.float64) else torch.float32  # others: widened per piece
     b, h, tq, tk = w.shape
     w3 = w.reshape(b * h, tq, tk)  # (B*H, Tq, Tk)  a view for stored or freshly made maps
+    s3 = None
+    if scores is not None and w.dtype == torch.float32 and scores.dtype == torch.float32 \
+            and tuple(scores.shape) == (b, h, tq, tk):
+        s3 = scores.detach().reshape(b * h, tq, tk)  # (B*H, Tq, Tk)  a view when contiguous
     a = None if allowed is None else allowed.to(torch.bool)
     while a is not None and a.dim() < 4:
         a = a.unsqueeze(0)
@@ -71,6 +81,8 @@ def head_sums(weights: torch.Tensor, allowed: torch.Tensor | None = None, query_
         n_allowed = a.sum(dim=-1).expand(b, h, tq)  # (B, H, Tq)  the mask is small: (B or 1, H or 1, Tq, Tk)
         first = a.to(torch.uint8).argmax(dim=-1).expand(b, h, tq).reshape(-1, 1)  # (B*H*Tq, 1) first allowed key
         a_full = a.expand(b, h, tq, tk)
+        # a mask shared by every map: its forbidden keys as 0/1 weights once, so a piece's leak is one product
+        shared = (~a[0, 0]).to(w_dtype) if a.shape[0] == 1 and a.shape[1] == 1 else None  # (Tq, Tk)
     slab = tq * tk * 4  # bytes of one (batch item, head) map in float32
     if slab <= PIECE_BYTES:
         per = max(1, PIECE_BYTES // slab)
@@ -86,19 +98,27 @@ def head_sums(weights: torch.Tensor, allowed: torch.Tensor | None = None, query_
         out = {k: v[lo:hi].view(s1 - s0, r1 - r0) for k, v in rows.items()}  # (s, r) each
         torch.sum(p, dim=-1, out=out["sum"])
         torch.amax(p, dim=-1, out=out["max"])
-        tmp = p.clamp_min(_TINY).log_().mul_(p)  # (s, r, Tk)  w ln w with 0 ln 0 = 0, while the piece is in cache
-        torch.sum(tmp, dim=-1, out=out["entropy"])
+        if s3 is None:
+            tmp = p.clamp_min(_TINY).log_().mul_(p)  # (s, r, Tk)  w ln w with 0 ln 0 = 0, while the piece is in cache
+            torch.sum(tmp, dim=-1, out=out["entropy"])
+        else:
+            sp = s3[s0:s1, r0:r1]  # (s, r, Tk)
+            tmp = torch.sub(sp, sp.amax(dim=-1, keepdim=True))  # (s, r, Tk)  s - m <= 0
+            tmp.clamp_min_(_LOWEST).mul_(p)  # w (s - m); a -inf score has w = 0: 0 * lowest = 0, never NaN
+            torch.sum(tmp, dim=-1, out=out["entropy"])
+            top = out["max"]
+            out["entropy"].add_(torch.where(top > 0, top.log() * out["sum"], 0.0))  # + ln max(w) * sum w
         torch.mul(p, dist[r0:r1], out=tmp)
         torch.sum(tmp, dim=-1, out=out["distance"])
         if a is None:
             out["leak"].zero_()
             continue
-        if a.shape[0] == 1 and a.shape[1] == 1:
-            ap = a[0, 0, r0:r1]  # (r, Tk)  shared by every map
+        if shared is not None:
+            torch.mul(p, shared[r0:r1], out=tmp)  # (s, r, Tk)
         else:
             idx = torch.arange(s0, s1)
             ap = a_full[idx // h, idx % h, r0:r1]  # (s, r, Tk)  a small copy of the piece's mask
-        torch.mul(p, ~ap, out=tmp)
+            torch.mul(p, ~ap, out=tmp)
         torch.sum(tmp, dim=-1, out=out["leak"])
     sink = w.reshape(b * h * tq, tk).gather(-1, first).reshape(b, h, tq).to(w_dtype) if w.is_contiguous() else \
         w.gather(-1, first.reshape(b, h, tq, 1)).reshape(b, h, tq).to(w_dtype)  # (B, H, Tq)

@@ -18,7 +18,8 @@ import math
 
 import torch
 
-__all__ = ["FORBID_AT", "allowed_from_scores", "causal_allowed", "compact", "is_causal_mask", "sdpa_weights"]
+__all__ = ["FORBID_AT", "UNFIT", "added_mask_allowed", "agrees_with_scores", "allowed_from_scores", "causal_allowed",
+           "compact", "is_causal_mask", "sdpa_weights"]
 
 #: A float mask value at or below this forbids the key (``-inf``, ``finfo.min``, ``-1e9``, ``-1e4`` do).
 FORBID_AT = -1.0e4
@@ -119,6 +120,42 @@ def allowed_from_scores(scores: torch.Tensor) -> torch.Tensor | None:
     return compact(~(scores <= FORBID_AT), (b, h, tq, tk))
 
 
+#: what :func:`added_mask_allowed` returns for a mask that does not fit the scores (read the scores instead)
+UNFIT = object()
+
+
+def added_mask_allowed(mask: torch.Tensor, shape: tuple[int, int, int, int]):
+    """The compact allowed mask (as :func:`compact` gives it) of a float mask added to ``(B, H, Tq, Tk)`` scores.
+
+    The mask must carry the scores' query and key sizes itself (``(..., Tq, Tk)``, broadcast only over batch
+    and heads); a mask a module would still slice or widen (``(B, 1, 1, Tk)`` padding beside a causal buffer of
+    its own) returns :data:`UNFIT`.
+    """
+    b, h, tq, tk = shape
+    if mask.dim() > 4 or mask.dim() < 2 or tuple(mask.shape[-2:]) != (tq, tk):
+        return UNFIT
+    m = mask.detach()
+    while m.dim() < 4:
+        m = m.unsqueeze(0)
+    if m.shape[0] not in (1, b) or m.shape[1] not in (1, h):
+        return UNFIT
+    return compact(~_forbidden_from_float(m), shape)
+
+
+def agrees_with_scores(allowed: torch.Tensor | None, scores: torch.Tensor) -> bool:
+    """Whether the first and the last (batch item, head) of ``(B, H, Tq, Tk)`` *scores* forbid exactly the keys
+    *allowed* (compact, or None) forbids: a check of 2 maps out of B·H that a module masked nothing more."""
+    b, h = scores.shape[:2]
+    for bi, hi in {(0, 0), (b - 1, h - 1)}:
+        ok = ~(scores[bi, hi] <= FORBID_AT)  # (Tq, Tk)  as allowed_from_scores reads it (NaN allowed)
+        if allowed is None:
+            if not bool(ok.all()):
+                return False
+        elif not torch.equal(ok, allowed[min(bi, allowed.shape[0] - 1), min(hi, allowed.shape[1] - 1)]):
+            return False
+    return True
+
+
 def is_causal_mask(allowed: torch.Tensor | None, tq: int, tk: int, offset: int) -> bool:
     """True when *allowed* forbids every key later than the query (``j > i + offset``).
 
@@ -143,12 +180,14 @@ def _empty_rows(m: torch.Tensor | None, is_causal: bool, tq: int, tk: int) -> to
 
 
 def sdpa_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | None = None,
-                 is_causal: bool = False, scale: float | None = None, enable_gqa: bool = False) -> torch.Tensor:
+                 is_causal: bool = False, scale: float | None = None, enable_gqa: bool = False,
+                 with_scores: bool = False):
     """softmax(Q Kᵀ · scale + mask) with the semantics of ``F.scaled_dot_product_attention``, in float32.
 
     ``q`` is ``(B, Hq, Tq, E)``, ``k`` is ``(B, Hk, Tk, E)``; with ``enable_gqa`` each key head serves
     ``Hq // Hk`` consecutive query heads. Rows with no allowed key are all zeros (the fused kernels return a
-    zero output there). Returns ``(B, Hq, Tq, Tk)``.
+    zero output there). Returns ``(B, Hq, Tq, Tk)``, or ``(weights, masked scores)`` with ``with_scores``
+    (for statistics that take the entropy from the scores, :func:`attnscope.stats.head_sums`).
     """
     q = q.detach().float()
     k = k.detach().float()
@@ -164,9 +203,13 @@ def sdpa_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | Non
         if m.dtype == torch.bool:
             scores.masked_fill_(~m, float("-inf"))
         else:
-            scores = scores + m.float()  # not in place: the mask may broadcast to a larger shape
-    weights = torch.softmax(scores, dim=-1)
+            if torch.broadcast_shapes(scores.shape, m.shape) == scores.shape:
+                scores.add_(m.float())  # (B, H, Tq, Tk)  in place: no second map
+            else:
+                scores = scores + m.float()  # the mask broadcasts to a larger shape than the scores
+    kept = scores.clone() if with_scores else None  # (B, H, Tq, Tk)
+    weights = torch.softmax(scores, dim=-1, out=scores)  # in place (bit-equal): never scores beside weights
     empty = _empty_rows(m, is_causal, tq, tk)  # read off the (small) mask, never the full scores
     if empty is not None:
         weights.masked_fill_(empty, 0.0)  # softmax gives NaN there; the fused kernels give a zero output
-    return weights
+    return (weights, kept) if with_scores else weights

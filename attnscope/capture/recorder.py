@@ -16,7 +16,7 @@ from typing import Any
 import torch
 from torch import nn
 
-from attnscope.capture import rules
+from attnscope.capture import masks, rules
 from attnscope.capture.discovery import ModelMap
 from attnscope.errors import MemoryBudgetError, OptionError
 from attnscope.records import AttentionRecord, HeadSums, ResidualRecord
@@ -46,6 +46,18 @@ class Frame:
     owner: Frame | None = None
     others: tuple = ()  # floating tensor arguments that may carry another sequence (rules.other_sequences)
     consumed_other: bool = False  # a child module consumed one of ``others``: keys come from another sequence
+    mask_arg: torch.Tensor | None = None  # the float ``attention_mask`` an attention module got (rules.mask_argument)
+
+    def release(self) -> None:
+        """Drop what the call held (its softmax output, mask, candidate sequences) when it returns.
+
+        An attention module's frame is its own owner, a reference cycle: without this the model's weights and
+        scores of every layer would live until Python's cycle collector runs, and memory would not be reused.
+        """
+        self.owner = None
+        self.last_softmax = None
+        self.mask_arg = None
+        self.others = ()
 
     def target(self) -> Frame:
         """The frame a record of an attention call in this frame is named after."""
@@ -94,6 +106,8 @@ class Recorder:
         #: a tensor the model goes on using (eager paths keep the model's own weights, copying nothing)
         self.borrowed: list[tuple[str, torch.Tensor, int]] = []
         self._tls = threading.local()
+        #: id(mask) -> (mask, version, shape, compact allowed): every layer gets the same mask tensor
+        self._mask_memo: dict[int, tuple[torch.Tensor, int, tuple, Any]] = {}
 
     # ---------------------------------------------------------------- hooks: who is calling
     def _stack(self) -> list[Frame]:
@@ -117,6 +131,7 @@ class Recorder:
             owner_name = self.map.owner.get(name)
             if owner_name == name:
                 frame.owner = frame
+                frame.mask_arg = rules.mask_argument(module, args, kwargs)
             elif owner_name is not None:
                 frame.owner = next((f for f in reversed(stack) if f.name == owner_name), None) or (
                     parent.owner if parent else None)
@@ -136,6 +151,7 @@ class Recorder:
             stack = self._stack()
             while stack:  # always_call=True: also runs when forward raised, so the stack stays balanced
                 frame = stack.pop()
+                frame.release()
                 if frame.module is module:
                     break
             if is_block and self.open and not self.muted:
@@ -151,6 +167,33 @@ class Recorder:
         return stack[-1] if stack else None
 
     # ---------------------------------------------------------------- making records
+    def allowed_of_softmax(self, frame: Frame, scores: torch.Tensor) -> torch.Tensor | None:
+        """The compact allowed mask of ``(B, H, Tq, Tk)`` *scores* a softmax in *frame* received.
+
+        From the ``attention_mask`` the attention module was called with when it fits and agrees with the
+        scores (worked out once per mask tensor, not once per layer), else from the scores themselves.
+        """
+        mask = frame.target().mask_arg
+        if mask is not None:
+            shape = tuple(scores.shape)
+            memo = self._mask_memo.get(id(mask))
+            if memo is None or memo[0] is not mask or memo[1] != mask._version or memo[2] != shape:
+                if len(self._mask_memo) > 8:
+                    self._mask_memo.clear()
+                memo = self._mask_memo[id(mask)] = (mask, mask._version, shape, masks.added_mask_allowed(mask, shape))
+            allowed = memo[3]
+            if allowed is not masks.UNFIT and masks.agrees_with_scores(allowed, scores):
+                return allowed
+        return masks.allowed_from_scores(scores)
+
+    def release(self) -> None:
+        """Drop every model tensor the capture still holds (when it closes): masks of :meth:`allowed_of_softmax`
+        and the frames a forward that raised left on this thread's stack."""
+        self._mask_memo.clear()
+        for frame in self._stack():
+            frame.release()
+        self._stack().clear()
+
     def kept_heads(self, h: int, name: str) -> tuple[int, ...]:
         """The head indices to keep of a call with *h* heads in module *name*."""
         if self.heads is None:
@@ -161,13 +204,17 @@ class Recorder:
 
     def record(self, frame: Frame, kind: str, shape: tuple[int, int, int, int], heads: tuple[int, ...],
                allowed: torch.Tensor | None, causal: bool, source: str, offset: int, compute: Compute,
-               replace_at: int | None = None, builds: bool = False) -> int:
+               replace_at: int | None = None, builds: bool = False, scores: torch.Tensor | None = None,
+               scored: Callable[[slice, list], tuple[torch.Tensor, torch.Tensor]] | None = None) -> int:
         """Keep one call (maps or statistics) and return its index in :attr:`attention`.
 
         ``allowed`` is the compact ``(B or 1, H or 1, Tq, Tk)`` bool mask or None; ``replace_at`` refines an
         earlier record of the same call (a ``tap`` of a softmax's output). ``builds`` says that *compute* makes
         the weights anew (a recomputation): kept maps are then built piece by piece into one array, so no
-        whole-map temporary (scores beside weights) exists at any time.
+        whole-map temporary (scores beside weights) exists at any time. ``scores`` are the ``(B, H, Tq, Tk)``
+        softmax input of weights that exist already (the softmax path): ``keep="stats"`` then takes the entropy
+        from them without a logarithm per weight (:func:`~attnscope.stats.head_sums`); ``scored`` is a *compute*
+        that builds ``(weights, masked scores)`` for the same purpose (a recomputation).
         """
         b, _, tq, tk = shape
         target = frame.target()
@@ -197,7 +244,7 @@ class Recorder:
             if replace_at is None:
                 self.counters.kept_bytes += size
         else:
-            stats = _reduce(compute, b, heads, allowed, offset, tq * tk * 4)
+            stats = _reduce(compute, b, shape[1], heads, allowed, offset, tq * tk * 4, builds, scores, scored)
             kept = None
         # keep="stats" keeps O(heads) numbers per call, so no (Tq, Tk) mask either: the statistics already hold
         # what the mask meant (leak_mass, rows), and ``causal`` says whether it was causal.
@@ -256,9 +303,18 @@ def _note_consumed(parent: Frame, args: tuple) -> None:
             frame.consumed_other = hit
 
 
-def _reduce(compute: Compute, b: int, heads: tuple[int, ...], allowed: torch.Tensor | None, offset: int,
-            map_bytes: int) -> HeadSums:
-    """keep="stats": reduce a call to per-head sums, building at most ``_STATS_CHUNK_BYTES`` of map at once."""
+def _reduce(compute: Compute, b: int, h: int, heads: tuple[int, ...], allowed: torch.Tensor | None, offset: int,
+            map_bytes: int, builds: bool = True, scores: torch.Tensor | None = None,
+            scored: Callable[[slice, list], tuple[torch.Tensor, torch.Tensor]] | None = None) -> HeadSums:
+    """keep="stats": reduce a call to per-head sums, building at most ``_STATS_CHUNK_BYTES`` of map at once.
+
+    Weights that exist already (``builds`` False) are reduced in one call when every head is kept: *compute*
+    then hands out a view, and :func:`~attnscope.stats.head_sums` walks it in cache-sized pieces itself.
+    """
+    if not builds and b and heads == tuple(range(h)):
+        whole = compute(slice(None), list(heads))  # (B, H, Tq, Tk)  a view of the existing weights
+        if whole.dtype == torch.float32 and whole.is_contiguous():
+            return head_sums(whole, allowed, offset, scores)
     per_item = len(heads) * map_bytes
     b_step = max(1, _STATS_CHUNK_BYTES // max(per_item, 1))
     h_step = len(heads) if b_step > 1 else max(1, min(len(heads), _STATS_CHUNK_BYTES // max(map_bytes, 1)))
@@ -273,7 +329,12 @@ def _reduce(compute: Compute, b: int, heads: tuple[int, ...], allowed: torch.Ten
             if a is not None:
                 a = a if a.shape[0] == 1 else a[sl]
                 a = a[:, positions] if a.shape[1] > 1 else a
-            sums = sums.merge(head_sums(compute(sl, hs), a, offset))
+            if scored is not None:
+                w, part = scored(sl, hs)  # (b, h, Tq, Tk) each
+            else:
+                w = compute(sl, hs)
+                part = None if scores is None else scores[sl][:, hs]  # (b, h, Tq, Tk)  a copy of the piece's scores
+            sums = sums.merge(head_sums(w, a, offset, part))
         groups.append(sums)
     return groups[0] if len(groups) == 1 else HeadSums.concat(groups)
 

@@ -52,6 +52,19 @@ path                                     seen as
 ``flex``                                 ``flex_attention``, weights recomputed from q, k, score_mod, block mask
 =======================================  ==========================================================================
 
+Forbidden keys of a softmax call (per call; :func:`mask_argument`, :mod:`attnscope.capture.paths.softmax`)
+
+=======================================  ==========================================================================
+rule                                     why
+=======================================  ==========================================================================
+the floating ``attention_mask`` the      HF eager attention adds exactly this mask to its scores; one small tensor
+attention module was called with, when   shared by every layer is read once per forward instead of every head's
+it has the scores' last two sizes and    ``Tq x Tk`` scores. Trusted only when the scores of the first and the last
+agrees with two (batch, head) slices     (batch item, head) forbid the same keys, so a module that masks more
+of the scores                            inside (a causal buffer of its own) falls back to the next row
+else the scores themselves               a key is forbidden where its score is at most ``masks.FORBID_AT``
+=======================================  ==========================================================================
+
 Self or cross (per call, first rule that applies; :func:`kind_hint`)
 
 =======================================  ==========================================================================
@@ -96,7 +109,8 @@ from torch import nn
 
 from attnscope.names import within
 
-__all__ = ["CONTAINERS", "NN_LAYERS", "head_count", "is_attention_module", "kind_hint", "module_label", "owners"]
+__all__ = ["CONTAINERS", "NN_LAYERS", "head_count", "is_attention_module", "kind_hint", "mask_argument",
+           "module_label", "owners"]
 
 _ATTN_CLASS = re.compile(r"attention|attn", re.IGNORECASE)
 _ATTN_SOURCE = re.compile(r"scaled_dot_product_attention|flex_attention\(|\btap\(")
@@ -176,6 +190,42 @@ def other_sequences(module: nn.Module, args: tuple) -> tuple[torch.Tensor, ...]:
     return tuple(o for o in tensors[1:] if o is not first and not o.is_nested and o.layout == torch.strided
                  and o.dim() == first.dim() and o.dim() >= 2 and o.shape[-1] == first.shape[-1]
                  and o.data_ptr() != first.data_ptr())
+
+
+#: the argument name of the mask an attention module adds to its scores (HF transformers' eager attention)
+MASK_ARGUMENT = "attention_mask"
+
+
+@functools.lru_cache(maxsize=256)
+def _mask_position(cls: type) -> int | None:
+    """Index of ``attention_mask`` among the positional arguments of ``cls.forward`` (after self), or None."""
+    try:
+        params = list(inspect.signature(cls.forward).parameters.values())[1:]
+    except (TypeError, ValueError):
+        return None
+    for i, p in enumerate(params):
+        if p.kind not in (p.POSITIONAL_ONLY, p.POSITIONAL_OR_KEYWORD):
+            return None
+        if p.name == MASK_ARGUMENT:
+            return i
+    return None
+
+
+def mask_argument(module: nn.Module, args: tuple, kwargs: dict[str, Any]) -> torch.Tensor | None:
+    """The floating ``attention_mask`` an attention module is called with (keyword or positional), else None.
+
+    HF eager attention adds it to the scores before its softmax; the softmax path reads the forbidden keys off
+    it (one small ``(B or 1, 1, Tq, Tk)`` tensor shared by every layer) instead of off every head's scores. Bool
+    and integer masks are left out: their conventions differ (True allows a key in HF, forbids it in torch's MHA).
+    """
+    mask = kwargs.get(MASK_ARGUMENT)
+    if mask is None and args:
+        i = _mask_position(type(module))
+        mask = args[i] if i is not None and i < len(args) else None
+    if isinstance(mask, torch.Tensor) and mask.is_floating_point() and mask.layout == torch.strided \
+            and not mask.is_nested:
+        return mask
+    return None
 
 
 def head_count(module: nn.Module) -> int | None:

@@ -300,6 +300,7 @@ class Capture:
                 release_fastpath()
             self._state = "closed"
             self._rec.open = False
+            self._rec.release()
 
     def _finish(self) -> None:
         c = self._rec.counters

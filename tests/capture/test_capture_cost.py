@@ -3,8 +3,10 @@ the opt-in ``sdpa="weights"`` (output computed from the weights capture builds) 
 
 from __future__ import annotations
 
+import gc
 import importlib
 import math
+import weakref
 
 import numpy as np
 import pytest
@@ -189,3 +191,145 @@ def test_recomputed_maps_built_in_pieces_equal_an_independent_softmax(monkeypatc
     w = (q @ k.transpose(-2, -1) / math.sqrt(8)).masked_fill(~causal, float("-inf")).softmax(-1)  # independent
     np.testing.assert_allclose(cap.attention[0].weights, w.numpy(), atol=1e-6)
     assert torch.equal(out, F.scaled_dot_product_attention(q, k, v, is_causal=True))  # untouched by default
+
+
+class MaskedBlockAttention(nn.Module):
+    """Hand-written attention that adds the ``attention_mask`` it is given and, optionally, masks more inside."""
+
+    def __init__(self, inner_causal: bool) -> None:
+        super().__init__()
+        self.inner_causal = inner_causal
+        self.n_head = 2
+
+    def forward(self, x, attention_mask=None):  # x (B, T, D); attention_mask (B or 1, 1, Tq or 1, Tk) float
+        b, t, d = x.shape
+        q = x.view(b, t, 2, d // 2).transpose(1, 2)  # (B, H, T, E)
+        scores = q @ q.transpose(-2, -1)  # (B, H, T, T)
+        if self.inner_causal:
+            scores = scores.masked_fill(~torch.ones(t, t, dtype=torch.bool).tril(), torch.finfo(x.dtype).min)
+        if attention_mask is not None:
+            scores = scores + attention_mask
+        w = F.softmax(scores, dim=-1)
+        return (w @ q).transpose(1, 2).reshape(b, t, d)
+
+
+def _padding(b: int, t: int, full: bool) -> torch.Tensor:
+    keep = torch.ones(b, t, dtype=torch.bool)
+    keep[1, 4:] = False  # the second item is padded after 4 tokens
+    allowed = keep[:, None, None, :] & (torch.ones(t, t, dtype=torch.bool).tril() if full else True)
+    return torch.zeros(allowed.shape).masked_fill(~allowed, torch.finfo(torch.float32).min)
+
+
+@pytest.mark.parametrize(("inner_causal", "full"), [(False, True), (True, False), (True, True)])
+def test_softmax_masks_from_the_mask_argument_or_the_scores_equal_an_independent_recomputation(inner_causal, full):
+    torch.manual_seed(0)
+    b, t = 3, 6
+    block = MaskedBlockAttention(inner_causal)
+    x = torch.randn(b, t, 8)
+    mask = _padding(b, t, full)  # (B, 1, T, T) full mask, or (B, 1, 1, T) padding only
+    with torch.no_grad(), attnscope.capture(block, residual=False) as cap:
+        block(x, attention_mask=mask)
+    # independent: a key is allowed where the causal rule (when the block applies one) and the mask allow it
+    expect = ~(mask <= -1e4).expand(b, 1, t, t)
+    if inner_causal:
+        expect = expect & torch.ones(t, t, dtype=torch.bool).tril()
+    rec = cap.attention[0]
+    np.testing.assert_array_equal(rec.allowed_full(), np.broadcast_to(expect.numpy(), rec.weights.shape))
+    assert rec.causal == (inner_causal or full)
+
+
+def test_a_mask_argument_that_disagrees_with_the_scores_is_not_trusted():
+    """A mask argument the block does not apply (it masks causally on its own) must not be taken for the mask."""
+
+    class IgnoringMaskAttention(MaskedBlockAttention):
+        def forward(self, x, attention_mask=None):
+            return super().forward(x, None)
+
+    torch.manual_seed(0)
+    block = IgnoringMaskAttention(inner_causal=True)
+    unrelated = torch.zeros(2, 1, 5, 5)  # allows every key: contradicts the scores of every map
+    with torch.no_grad(), attnscope.capture(block, residual=False) as cap:
+        block(torch.randn(2, 5, 8), attention_mask=unrelated)
+    causal = torch.ones(5, 5, dtype=torch.bool).tril()  # common practice, no source: the causal rule j <= i
+    np.testing.assert_array_equal(cap.attention[0].allowed_full()[0, 0], causal.numpy())
+    assert cap.attention[0].causal
+
+
+@pytest.mark.parametrize("scale", [1.0, 40.0])
+def test_entropy_from_scores_equals_brute_force_with_minus_inf_masks_and_large_scores(monkeypatch, scale):
+    monkeypatch.setattr(attnscope.stats, "PIECE_BYTES", 400)  # many pieces, some of one row
+    torch.manual_seed(0)
+    b, h, tq, tk = 2, 3, 7, 9
+    allowed = torch.ones(tq, tk, dtype=torch.bool).tril(diagonal=2)  # (Tq, Tk)
+    scores = (torch.randn(b, h, tq, tk) * scale).masked_fill(~allowed, float("-inf"))  # -inf, as hand-written code
+    scores[1, 0, 5] = float("-inf")  # a row with no allowed key: NaN weights, left out
+    w = scores.softmax(-1)  # (B, H, Tq, Tk)
+    got = head_sums(w, allowed[None, None], 2, scores=scores).means()
+    expect = brute_means(w.numpy(), allowed.numpy(), 2)  # scipy's entr on the weights, row by row
+    for k, v in expect.items():
+        np.testing.assert_allclose(got[k], v, rtol=1e-6, atol=1e-6, err_msg=k)
+    assert list(head_sums(w, allowed[None, None], 2, scores=scores).nonfinite) == [1, 0, 0]  # the all -inf row
+
+
+@pytest.mark.parametrize("heads", [None, [1, 3]])
+def test_stats_of_a_softmax_call_equal_brute_force_on_its_maps_with_chosen_heads(monkeypatch, heads):
+    recorder = importlib.import_module("attnscope.capture.recorder")
+    monkeypatch.setattr(recorder, "_STATS_CHUNK_BYTES", 2 * 4 * 40 * 40 * 4)  # pieces of two batch items
+    model = gpt2("eager")
+    ids = torch.randint(0, 50, (5, 40))
+    with torch.no_grad(), attnscope.capture(model, keep="maps", heads=heads) as maps:
+        model(ids)
+    with torch.no_grad(), attnscope.capture(model, keep="stats", heads=heads) as stats:
+        model(ids)
+    for rec, srec in zip(maps.attention, stats.attention):
+        expect = brute_means(rec.weights, rec.allowed, rec.query_offset)  # from the kept maps, brute force
+        for k, v in expect.items():
+            np.testing.assert_allclose(srec.stats.means()[k], v, rtol=1e-6, atol=1e-6, err_msg=k)
+
+
+class WatchedAttention(nn.Module):
+    """Hand-written attention that keeps a weak reference to its softmax output, to see when it is freed."""
+
+    def forward(self, x):  # (B, T, D)
+        w = (x @ x.transpose(-2, -1)).unsqueeze(1).softmax(dim=-1)  # (B, 1, T, T)
+        self.seen = weakref.ref(w)
+        return (w @ x.unsqueeze(1)).squeeze(1)
+
+
+def test_keep_stats_frees_the_model_weights_as_the_forward_goes_without_the_cycle_collector():
+    model = WatchedAttention()
+    gc.collect()
+    gc.disable()  # memory must be reused layer by layer, not when Python's cycle collector happens to run
+    try:
+        with torch.no_grad(), attnscope.capture(model, keep="stats", residual=False) as cap:
+            model(torch.randn(2, 5, 8))
+            assert model.seen() is None  # freed as soon as the module returned
+        assert cap.attention[0].weights is None and cap.attention[0].stats is not None
+    finally:
+        gc.enable()
+
+
+@pytest.mark.parametrize("sdpa", ["beside", "weights"])
+@pytest.mark.parametrize("mask_kind", ["causal", "bool with an empty row", "float -inf"])
+def test_stats_of_recomputed_sdpa_calls_equal_brute_force_on_their_maps(mask_kind, sdpa):
+    torch.manual_seed(0)
+    q, k, v = torch.randn(3, 4, 6, 8) * 3, torch.randn(3, 4, 6, 8) * 3, torch.randn(3, 4, 6, 8)
+    allowed = torch.ones(3, 1, 6, 6, dtype=torch.bool)
+    allowed[1, :, :, 4:] = False
+    allowed[2, :, 3] = False  # query 3 of item 2 sees no key: a zero row
+    mask = {"causal": None, "bool with an empty row": allowed,
+            "float -inf": torch.zeros(allowed.shape).masked_fill(~allowed, float("-inf"))}[mask_kind]
+
+    class Block(nn.Module):
+        def forward(self, q, k, v):
+            return F.scaled_dot_product_attention(q, k, v, attn_mask=mask, is_causal=mask is None)
+
+    block = Block()
+    with attnscope.capture(block, layers=[""], residual=False) as maps:
+        block(q, k, v)
+    with attnscope.capture(block, layers=[""], residual=False, keep="stats", sdpa=sdpa) as stats:
+        block(q, k, v)
+    rec = maps.attention[0]
+    expect = brute_means(rec.weights, rec.allowed, rec.query_offset)  # from the kept maps, brute force
+    for key, val in expect.items():
+        np.testing.assert_allclose(stats.attention[0].stats.means()[key], val, rtol=1e-6, atol=1e-6, err_msg=key)

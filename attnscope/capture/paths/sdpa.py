@@ -54,16 +54,18 @@ def on_call(rec: Recorder, func, args, kwargs):
     allowed = masks.compact(masks.sdpa_allowed(mask4, is_causal, tq, tk), (b, hq, tq, tk))
     heads = rec.kept_heads(hq, frame.target().name)
 
-    def compute(sl: slice, hs: list[int]):
+    def compute(sl: slice, hs: list[int], with_scores: bool = False):
         m = mask4
         if m is not None and m.dim() == 4:
             m = m[sl] if m.shape[0] == b else m
             m = m[:, hs] if m.shape[1] == hq else m
         kh = [h // rep for h in hs] if k4.shape[1] > 1 else [0]
-        return masks.sdpa_weights(q4[sl][:, hs], k4[sl][:, kh], m, is_causal, p.get("scale"))
+        return masks.sdpa_weights(q4[sl][:, hs], k4[sl][:, kh], m, is_causal, p.get("scale"),
+                                  with_scores=with_scores)
 
     causal = is_causal or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset))
-    rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute, builds=True)
+    rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute, builds=True,
+               scored=lambda sl, hs: compute(sl, hs, with_scores=True))
     return out
 
 
@@ -100,7 +102,11 @@ def _from_weights(rec: Recorder, frame, p: dict) -> torch.Tensor:
     b, hq, tq, _ = q4.shape  # (B, Hq, Tq, E)
     tk = k4.shape[-2]
     gqa = bool(p.get("enable_gqa", False))
-    w = masks.sdpa_weights(q4, k4, mask4, is_causal, p.get("scale"), enable_gqa=gqa)  # (B, Hq, Tq, Tk) float32
+    scores = None  # keep="stats" takes the entropy from the masked scores (no logarithm per weight)
+    if rec.keep == "stats":
+        w, scores = masks.sdpa_weights(q4, k4, mask4, is_causal, p.get("scale"), enable_gqa=gqa, with_scores=True)
+    else:
+        w = masks.sdpa_weights(q4, k4, mask4, is_causal, p.get("scale"), enable_gqa=gqa)  # (B, Hq, Tq, Tk) float32
     vv = v4
     if gqa and v4.shape[1] != hq:
         vv = v4.repeat_interleave(hq // v4.shape[1], dim=1)  # (B, Hq, Tk, Ev)
@@ -111,5 +117,5 @@ def _from_weights(rec: Recorder, frame, p: dict) -> torch.Tensor:
     heads = rec.kept_heads(hq, frame.target().name)
     causal = is_causal or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset))
     rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset,
-               lambda sl, hs: take(w, sl, hs))  # capture's own tensor: kept without a copy
+               lambda sl, hs: take(w, sl, hs), scores=scores)  # capture's own tensor: kept without a copy
     return out.reshape(*q.shape[:-1], v.shape[-1])

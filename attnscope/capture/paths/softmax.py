@@ -9,8 +9,10 @@ it: an ``Attend`` helper, an ``nn.Softmax`` child, a ``functools.partial(F.softm
   owning module's head count (``num_heads``, ``n_head``, ...) when it divides ``B·H``, else every row of the
   first axis is kept as a batch item of one head.
 
-``log_softmax`` is never routed here. Forbidden keys are read off the scores (at most
-:data:`~attnscope.capture.masks.FORBID_AT`).
+``log_softmax`` is never routed here. Forbidden keys come from the ``attention_mask`` the attention module was
+called with when it fits the scores and agrees with two of their maps (HF eager attention adds exactly that
+mask), else they are read off the scores (at most :data:`~attnscope.capture.masks.FORBID_AT`); see
+:mod:`attnscope.capture.rules`.
 """
 
 from __future__ import annotations
@@ -43,12 +45,13 @@ def on_call(rec: Recorder, func, args, kwargs):
         scores = scores.reshape(bh // h, h, tq, tk)
         w = w.reshape(bh // h, h, tq, tk)  # a view: the model's own tensor, never written
     b, h, tq, tk = w.shape  # (B, H, Tq, Tk)
-    allowed = masks.allowed_from_scores(scores)  # (B or 1, H or 1, Tq, Tk) bool, or None
+    allowed = rec.allowed_of_softmax(frame, scores)  # (B or 1, H or 1, Tq, Tk) bool, or None
     kind = frame.kind()
     offset = 0 if kind == "cross" else max(tk - tq, 0)
     heads = rec.kept_heads(h, target.name)
     causal = kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset)
     index = rec.record(frame, kind, (b, h, tq, tk), heads, allowed, causal, SOURCE, offset,
-                       lambda sl, hs: take(w, sl, hs, shared=True))  # the model keeps using it
+                       lambda sl, hs: take(w, sl, hs, shared=True),  # the model keeps using it
+                       scores=scores if scores.dtype == w.dtype == torch.float32 else None)
     target.last_softmax = (out, index)
     return out
