@@ -218,6 +218,7 @@ class Scene:
         self.scores = self._score_table()
         self.distances, self.twin_note = self._distances(cap, distances)
         self.tally = self._tally(cap, given=distances is not None)
+        self._atlas_memo: dict[int, dict[str, list]] = {}
         self.findings = as_tables(findings, "findings") or [("findings", as_frame(None))]
         self.checks = as_tables(checks, "checks") or [("checks", as_frame(None))]
         self._build()
@@ -527,14 +528,18 @@ class Scene:
         h = self.heads[g]
         return f"{h.record}.{h.head}"
 
-    def lens_arrays(self, g: int, item: int) -> dict[str, Any]:
-        """The selected map for display: weights (pooled past lens_side), veil codes, labels, title."""
+    def lens_arrays(self, g: int, item: int, *, labels: bool = True) -> dict[str, Any]:
+        """The selected map for display: weights (pooled past lens_side), veil codes, labels, title.
+
+        ``labels=False`` leaves the token labels out (``q`` and ``k`` are None), for callers that store them once
+        per record.
+        """
         h = self.heads[g]
         rec = self.records[h.record]
         item = min(item, rec.batch - 1)
         tq, tk = rec.queries, rec.keys
-        q = self.labels.axis(rec.name, tq, item, axis="q", kind=rec.kind, offset=rec.query_offset)
-        k = self.labels.axis(rec.name, tk, item, axis="k", kind=rec.kind)
+        q = self.labels.axis(rec.name, tq, item, axis="q", kind=rec.kind, offset=rec.query_offset) if labels else None
+        k = self.labels.axis(rec.name, tk, item, axis="k", kind=rec.kind) if labels else None
         stat = self.scores.iloc[g]
         if rec.weights is None:
             return dict(image=np.full((1, 1), np.nan, dtype=np.float32), veil=np.zeros((1, 1), np.uint8),
@@ -619,6 +624,8 @@ class Scene:
         pooled to at most ``tile`` cells a side, scaled to its own maximum and repeated up to the block size;
         one background row and column (code 255) separate neighbouring blocks.
         """
+        if item in self._atlas_memo:  # the mosaic of an item never changes: built once
+            return {key: list(v) for key, v in self._atlas_memo[item].items()}
         side, n_rec = self.tile, len(self.records)
         width = max(len(r.heads) for r in self.records)
         step = side + 1
@@ -632,7 +639,8 @@ class Scene:
             cols = np.arange(side) * tile.shape[1] // side
             r0, c0 = h.record * step, h.slot * step
             mosaic[r0:r0 + side, c0:c0 + side] = tile[rows[:, None], cols[None, :]]
-        return dict(image=[mosaic], x=[0], y=[0], dw=[width], dh=[n_rec])
+        self._atlas_memo[item] = dict(image=[mosaic], x=[0], y=[0], dw=[width], dh=[n_rec])
+        return {key: list(v) for key, v in self._atlas_memo[item].items()}
 
     def tile_of(self, mosaic: np.ndarray, g: int) -> np.ndarray:
         """The ``tile x tile`` block of head *g* in an atlas mosaic."""

@@ -4,6 +4,7 @@ Nothing here is an analysis: these functions only decide how many pixels and whi
 browser gets. The numbers a user reads (statistics, distances) come from the capture or the analyses.
 
 >>> import numpy as np
+import torch
 >>> pool(np.eye(4, dtype=np.float32), 2).tolist()    # mean of each 2x2 block
 [[0.5, 0.0], [0.0, 0.5]]
 """
@@ -11,6 +12,7 @@ browser gets. The numbers a user reads (statistics, distances) come from the cap
 from __future__ import annotations
 
 import numpy as np
+import torch
 
 __all__ = ["LEAK_FLOOR", "TILE_TOP", "mask_codes", "pool", "quantise_tile", "quantise_weights"]
 
@@ -26,8 +28,26 @@ def _edges(n: int, size: int) -> np.ndarray:
     return np.linspace(0, n, size + 1).round().astype(np.int64)[:-1]
 
 
+def _bins(n: int, size: int) -> tuple[np.ndarray, np.ndarray]:
+    """First position and length of each of *size* bins over *n* positions."""
+    edges = _edges(n, size)
+    return edges, np.diff(np.append(edges, n))
+
+
+def _max_rows(a: np.ndarray, edges: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """Maximum over bins of the second-to-last axis, in the array's own dtype (one gather per bin offset)."""
+    out = a[..., edges, :]
+    for j in range(1, int(counts.max())):
+        idx = np.flatnonzero(counts > j)
+        out[..., idx, :] = np.maximum(out[..., idx, :], a[..., edges[idx] + j, :])
+    return out
+
+
 def pool(a: np.ndarray, size: int, how: str = "mean") -> np.ndarray:
     """Pool the last two axes of *a* to at most ``size x size`` cells (never upsampled).
+
+    Means are float32 sums over each block (added in position order) divided by the block's cell count; maxima
+    are taken in the input's dtype, so codes stay exact.
 
     Args:
         a: ``(..., Tq, Tk)`` array.
@@ -39,16 +59,23 @@ def pool(a: np.ndarray, size: int, how: str = "mean") -> np.ndarray:
     """
     tq, tk = a.shape[-2:]
     sq, sk = min(tq, size), min(tk, size)
-    out = a.astype(np.float32, copy=False)
-    for axis, n, s in ((-2, tq, sq), (-1, tk, sk)):
+    if how == "max":
+        out = np.asarray(a)
+        if sq < tq:
+            out = _max_rows(out, *_bins(tq, sq))
+        if sk < tk:
+            out = np.swapaxes(_max_rows(np.swapaxes(out, -1, -2), *_bins(tk, sk)), -1, -2)
+        return np.ascontiguousarray(out, dtype=np.float32)
+    t = torch.from_numpy(np.ascontiguousarray(a, dtype=np.float32))  # (..., Tq, Tk), no copy when float32
+    for dim, n, s in ((-2, tq, sq), (-1, tk, sk)):
         if s < n:
-            edges = _edges(n, s)
-            if how == "max":
-                out = np.maximum.reduceat(out, edges, axis=axis)
-            else:
-                counts = np.diff(np.append(edges, n)).astype(np.float32)  # (s,)
-                out = np.add.reduceat(out, edges, axis=axis) / (counts[:, None] if axis == -2 else counts)
-    return np.ascontiguousarray(out, dtype=np.float32)
+            _, counts = _bins(n, s)
+            shape = list(t.shape)
+            shape[dim] = s
+            bins = torch.from_numpy(np.repeat(np.arange(s), counts))  # (n,) the bin of each position
+            div = torch.from_numpy(counts.astype(np.float32))  # (s,)
+            t = torch.zeros(shape, dtype=torch.float32).index_add_(dim, bins, t) / (div[:, None] if dim == -2 else div)
+    return np.ascontiguousarray(t.numpy(), dtype=np.float32)
 
 
 def quantise_tile(tile: np.ndarray) -> np.ndarray:
@@ -96,5 +123,5 @@ def mask_codes(weights: np.ndarray | None, allowed: np.ndarray | None) -> np.nda
     forbidden = ~np.asarray(allowed, dtype=bool)
     codes = forbidden.astype(np.uint8)
     if weights is not None:
-        codes[forbidden & (np.nan_to_num(weights, nan=0.0) > LEAK_FLOOR)] = 2
+        codes[forbidden & (weights > LEAK_FLOOR)] = 2  # NaN compares False: never a leak
     return codes
