@@ -34,7 +34,7 @@ from attnscope.errors import AttnscopeWarning, OptionError
 from attnscope.views.scene import STATISTICS, Scene, Tally
 from attnscope.views.tiles import quantise_weights
 
-__all__ = ["export_html"]
+__all__ = ["export_html", "page_layout"]
 
 #: Bytes of map data (before compression) a page holds at most; past it the maps are pooled further.
 PAGE_BYTES = 64_000_000
@@ -204,12 +204,35 @@ def export_html(cap: Any, path: str | os.PathLike, tokens: Any = None, *, ids: A
 
         return export_run_html(cap, path, statistic=statistic, head=head,
                                title="attnscope training run" if title == "attnscope dashboard" else title)
+    page = page_layout(cap, tokens, ids=ids, findings=findings, checks=checks, distances=distances,
+                       statistic=statistic, head=head, tile=tile, lens_side=lens_side, max_bytes=max_bytes)
+    out = Path(path)
+    out.write_text(file_html(page, INLINE, title=title), encoding="utf-8")
+    return out
+
+
+def page_layout(cap: Any, tokens: Any = None, *, ids: Any = None, findings: Any = None, checks: Any = None,
+                distances: Any = None, statistic: str = "entropy_ratio", head: int = 0, tile: int = 24,
+                lens_side: int = 512, max_bytes: int = PAGE_BYTES) -> Any:
+    """The page's Bokeh layout (controls, summary line, views, every stored map and the JS callbacks), unwritten.
+
+    :func:`export_html` writes it with ``bokeh.embed.file_html``; the arguments are the same.
+
+    >>> import torch, attnscope
+    >>> mha = torch.nn.MultiheadAttention(8, 2, batch_first=True)
+    >>> x = torch.randn(1, 3, 8)
+    >>> with attnscope.capture(mha) as cap:
+    ...     _ = mha(x, x, x)
+    >>> page_layout(cap).name
+    'as-page'
+    """
     if max_bytes <= 0:
         raise OptionError(f"max_bytes: expected a positive number of bytes, received {max_bytes}")
     side = _lens_side_for(cap, lens_side, max_bytes)
     scene = Scene(cap, tokens, ids=ids, findings=findings, checks=checks, distances=distances,
                   statistic=statistic, tile=tile, lens_side=side)
-    scene.select(head)
+    if head != scene.g:  # the scene opens on head 0
+        scene.select(head)
     v = _vaults(scene)
     head_select = Select(title="head", options=[(str(h.g), h.label) for h in scene.heads], value=str(scene.g),
                          width=420, name="as-head-select")
@@ -246,7 +269,4 @@ fig.title.text = 'scores: ' + name + ' per head';"""))
     veil_box.js_on_change("active", CustomJS(args=dict(veil=scene.veil), code="veil.visible = this.active.includes(0);"))
     tally_row = row(Div(text="flagged heads:", name="as-tally-label"), *[_tally_button(t, head_select)
                                                                        for t in scene.tally], name="as-tally")
-    page = column(tally_row, row(head_select, item_select, stat_select, veil_box), scene.layout, name="as-page")
-    out = Path(path)
-    out.write_text(file_html(page, INLINE, title=title), encoding="utf-8")
-    return out
+    return column(tally_row, row(head_select, item_select, stat_select, veil_box), scene.layout, name="as-page")
