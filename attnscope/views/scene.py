@@ -63,7 +63,7 @@ from attnscope.errors import AttnscopeWarning, OptionError, ShapeError, suggest
 from attnscope.records import STAT_COLUMNS
 from attnscope.views.findings import as_frame, as_tables, html_table
 from attnscope.views.labels import TokenLabels
-from attnscope.views.tiles import TILE_TOP, mask_codes, pool, quantise_tile
+from attnscope.views.tiles import LEAK_FLOOR, TILE_TOP, mask_codes, pool, quantise_tile
 
 __all__ = ["CAUTION", "STATISTICS", "Scene", "Tally"]
 
@@ -219,6 +219,7 @@ class Scene:
         self.distances, self.twin_note = self._distances(cap, distances)
         self.tally = self._tally(cap, given=distances is not None)
         self._atlas_memo: dict[int, dict[str, list]] = {}
+        self._veil_memo: dict[tuple[int, int, int], np.ndarray] = {}
         self.findings = as_tables(findings, "findings") or [("findings", as_frame(None))]
         self.checks = as_tables(checks, "checks") or [("checks", as_frame(None))]
         self._build()
@@ -551,11 +552,22 @@ class Scene:
             allowed = declared_cells(rec, self.pattern)[item]
         else:
             allowed = None if rec.allowed is None else np.asarray(rec.allowed_full()[item, h.slot])
-        veil = mask_codes(w, allowed)
         pooled = max(tq, tk) > self.lens_side
+        # a veil without leaks depends on the mask alone: pooled once per mask slice, shared by the heads using it
+        key = None
+        if pooled and allowed is not None and not declared:
+            leaks = np.greater(w > LEAK_FLOOR, allowed).any()  # weight above the floor where the mask forbids
+            key = None if leaks else (h.record, item if rec.allowed.shape[0] > 1 else 0,
+                                      h.slot if rec.allowed.shape[1] > 1 else 0)
+        veil = self._veil_memo.get(key) if key is not None else None
+        if veil is None:
+            veil = mask_codes(w, allowed)
+            if pooled:
+                veil = pool(veil, self.lens_side, how="max").astype(np.uint8)
+            if key is not None:
+                self._veil_memo[key] = veil
         if pooled:
             w = pool(w, self.lens_side)
-            veil = pool(veil, self.lens_side, how="max").astype(np.uint8)
         finite = w[np.isfinite(w)]
         top = float(finite.max()) if finite.size and finite.max() > 0 else 1.0
         mask_note = "no mask applied" if rec.allowed is None else (

@@ -4,7 +4,6 @@ Nothing here is an analysis: these functions only decide how many pixels and whi
 browser gets. The numbers a user reads (statistics, distances) come from the capture or the analyses.
 
 >>> import numpy as np
-import torch
 >>> pool(np.eye(4, dtype=np.float32), 2).tolist()    # mean of each 2x2 block
 [[0.5, 0.0], [0.0, 0.5]]
 """
@@ -12,7 +11,6 @@ import torch
 from __future__ import annotations
 
 import numpy as np
-import torch
 
 __all__ = ["LEAK_FLOOR", "TILE_TOP", "mask_codes", "pool", "quantise_tile", "quantise_weights"]
 
@@ -34,20 +32,27 @@ def _bins(n: int, size: int) -> tuple[np.ndarray, np.ndarray]:
     return edges, np.diff(np.append(edges, n))
 
 
-def _max_rows(a: np.ndarray, edges: np.ndarray, counts: np.ndarray) -> np.ndarray:
-    """Maximum over bins of the second-to-last axis, in the array's own dtype (one gather per bin offset)."""
-    out = a[..., edges, :]
+def _reduce_rows(a: np.ndarray, edges: np.ndarray, counts: np.ndarray, op: np.ufunc) -> np.ndarray:
+    """*op* (add or maximum) over bins of the second-to-last axis, one gather per offset within a bin.
+
+    Sums are taken in position order in the array's dtype. Single-threaded numpy on purpose: many small
+    parallel regions stall when a shared machine's other cores are busy.
+    """
+    out = a[..., edges, :]  # a copy: the first row of every bin
     for j in range(1, int(counts.max())):
         idx = np.flatnonzero(counts > j)
-        out[..., idx, :] = np.maximum(out[..., idx, :], a[..., edges[idx] + j, :])
+        if len(idx) == len(edges):
+            op(out, a[..., edges + j, :], out=out)
+        else:
+            out[..., idx, :] = op(out[..., idx, :], a[..., edges[idx] + j, :])
     return out
 
 
 def pool(a: np.ndarray, size: int, how: str = "mean") -> np.ndarray:
     """Pool the last two axes of *a* to at most ``size x size`` cells (never upsampled).
 
-    Means are float32 sums over each block (added in position order) divided by the block's cell count; maxima
-    are taken in the input's dtype, so codes stay exact.
+    Means are float32 sums over each block divided by the block's cell count; maxima are taken in the input's
+    dtype, so codes stay exact.
 
     Args:
         a: ``(..., Tq, Tk)`` array.
@@ -59,23 +64,19 @@ def pool(a: np.ndarray, size: int, how: str = "mean") -> np.ndarray:
     """
     tq, tk = a.shape[-2:]
     sq, sk = min(tq, size), min(tk, size)
-    if how == "max":
-        out = np.asarray(a)
-        if sq < tq:
-            out = _max_rows(out, *_bins(tq, sq))
-        if sk < tk:
-            out = np.swapaxes(_max_rows(np.swapaxes(out, -1, -2), *_bins(tk, sk)), -1, -2)
-        return np.ascontiguousarray(out, dtype=np.float32)
-    t = torch.from_numpy(np.ascontiguousarray(a, dtype=np.float32))  # (..., Tq, Tk), no copy when float32
-    for dim, n, s in ((-2, tq, sq), (-1, tk, sk)):
-        if s < n:
-            _, counts = _bins(n, s)
-            shape = list(t.shape)
-            shape[dim] = s
-            bins = torch.from_numpy(np.repeat(np.arange(s), counts))  # (n,) the bin of each position
-            div = torch.from_numpy(counts.astype(np.float32))  # (s,)
-            t = torch.zeros(shape, dtype=torch.float32).index_add_(dim, bins, t) / (div[:, None] if dim == -2 else div)
-    return np.ascontiguousarray(t.numpy(), dtype=np.float32)
+    mean = how != "max"
+    out = np.asarray(a, dtype=np.float32) if mean else np.asarray(a)
+    if sq < tq:
+        edges, counts = _bins(tq, sq)
+        out = _reduce_rows(out, edges, counts, np.add if mean else np.maximum)
+        if mean:
+            out /= counts[:, None].astype(np.float32)
+    if sk < tk:
+        edges, counts = _bins(tk, sk)
+        out = (np.add if mean else np.maximum).reduceat(out, edges, axis=-1)  # contiguous runs of each row
+        if mean:
+            out /= counts.astype(np.float32)
+    return np.ascontiguousarray(out, dtype=np.float32)
 
 
 def quantise_tile(tile: np.ndarray) -> np.ndarray:
