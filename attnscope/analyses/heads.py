@@ -126,7 +126,10 @@ def _pool(records: Sequence[AttentionRecord]) -> dict[str, _Pool]:
         rows = (allowed.sum(axis=-1) >= 2) & finite  # (B, H, Tq)
         first_key = np.broadcast_to(allowed.argmax(axis=-1)[..., None], (b, h, tq, 1))  # (B, H, Tq, 1)
         first = (np.take_along_axis(w, first_key, axis=-1)[..., 0] * rows).sum(axis=(0, 2), dtype=np.float64)
-        fixed = np.einsum("bhqk,bhq->hk", w, rows.astype(np.float32), optimize=True).astype(np.float64)  # (H, Tk)
+        if rows.all():  # every row counted (the usual case): a plain single-threaded sum, no BLAS call
+            fixed = w.sum(axis=2).sum(axis=0, dtype=np.float64)  # (H, Tk)
+        else:
+            fixed = np.einsum("bhqk,bhq->hk", w, rows.astype(np.float32), optimize=True).astype(np.float64)  # (H, Tk)
         if pool.fixed is None:
             pool.rows2, pool.first, pool.fixed = np.zeros(len(rec.heads)), np.zeros(len(rec.heads)), fixed
         else:

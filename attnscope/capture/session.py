@@ -14,6 +14,7 @@ import contextlib
 import functools
 import threading
 import warnings
+import weakref
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from typing import Any
 
@@ -388,14 +389,25 @@ class Capture:
         return self
 
 
+#: Sums reduced from stored maps, by ``id`` of the record, dropped when the record is freed. The head table,
+#: dead_heads, leak_summary and the views all read them; a map is reduced once.
+_REDUCED: dict[int, HeadSums] = {}
+
+
 def record_sums(record: AttentionRecord) -> HeadSums:
-    """Per-head sums of *record*: kept during capture (``keep="stats"``) or reduced from its maps."""
+    """Per-head sums of *record*: kept during capture (``keep="stats"``) or reduced from its maps (once)."""
     if record.stats is not None:
         return record.stats
     if record.weights is None:
         raise ShapeError(f"record '{record.name}' holds neither weights nor statistics")
-    allowed = None if record.allowed is None else torch.from_numpy(record.allowed)
-    return head_sums(torch.from_numpy(record.weights), allowed, record.query_offset)
+    key = id(record)
+    sums = _REDUCED.get(key)
+    if sums is None:
+        allowed = None if record.allowed is None else torch.from_numpy(record.allowed)
+        sums = head_sums(torch.from_numpy(record.weights), allowed, record.query_offset)
+        _REDUCED[key] = sums
+        weakref.finalize(record, _REDUCED.pop, key, None)
+    return sums
 
 
 def head_table(records: Sequence[AttentionRecord]):

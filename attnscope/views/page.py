@@ -1,9 +1,10 @@
 """The standalone page: the dashboard's views in one offline HTML file, interactive without a kernel.
 
 Every head's map is stored in the page as uint16 codes with one scale per map (``weight ≈ code * scale``,
-error at most half a code step); Bokeh JS callbacks turn the chosen head's codes back into weights and put
-them in the lens. BokehJS is
-inlined, so the file opens from disk with no network.
+error at most half a code step), written as two byte planes (high bytes, then low bytes: they compress better
+than interleaved pairs); Bokeh JS callbacks turn the chosen head's codes back into weights and put them in the
+lens. Mask veils are stored once per distinct veil (a causal model's heads share one). BokehJS is inlined, so the
+file opens from disk with no network.
 
 >>> import torch, attnscope, tempfile, pathlib
 >>> mha = torch.nn.MultiheadAttention(8, 2, batch_first=True)
@@ -23,6 +24,7 @@ import warnings
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 from bokeh.embed import file_html
 from bokeh.layouts import column, row
 from bokeh.models import Button, CheckboxGroup, ColumnDataSource, CustomJS, Div, Select
@@ -32,7 +34,7 @@ from attnscope.errors import AttnscopeWarning, OptionError
 from attnscope.views.scene import STATISTICS, Scene, Tally
 from attnscope.views.tiles import quantise_weights
 
-__all__ = ["export_html"]
+__all__ = ["export_html", "page_layout"]
 
 #: Bytes of map data (before compression) a page holds at most; past it the maps are pooled further.
 PAGE_BYTES = 64_000_000
@@ -45,12 +47,13 @@ function show(g, item) {
   const L = vault.data;
   const tq = L.tq[idx], tk = L.tk[idx];
   const geom = {x: [-0.5], y: [-0.5], dw: [tk], dh: [tq]};
-  // codes back to weights (float32), so colour bar and hover read weights
-  const codes = L.image[idx], scale = L.scale[idx];
-  const w = new Float32Array(codes.length);
-  for (let i = 0; i < codes.length; i++) w[i] = codes[i] * scale;
-  const image = Bokeh.require('core/util/ndarray').ndarray(w, {shape: codes.shape});
-  lens.data = Object.assign({image: [image], veil: [L.veil[idx]], scale: [1.0]}, geom);
+  // codes (high byte plane, low byte plane) back to weights (float32), so colour bar and hover read weights
+  const planes = L.image[idx], scale = L.scale[idx];
+  const shape = [planes.shape[1], planes.shape[2]], n = shape[0] * shape[1];
+  const w = new Float32Array(n);
+  for (let i = 0; i < n; i++) w[i] = (planes[i] * 256 + planes[n + i]) * scale;
+  const image = Bokeh.require('core/util/ndarray').ndarray(w, {shape: shape});
+  lens.data = Object.assign({image: [image], veil: [veils.data.veil[L.veil_at[idx]]], scale: [1.0]}, geom);
   const li = item * R + L.record[idx];
   qlab.data = {tok: names.data.q[li]};
   klab.data = {tok: names.data.k[li]};
@@ -86,17 +89,23 @@ function show_item(item) {
 
 def _vaults(scene: Scene) -> dict[str, ColumnDataSource]:
     """Every map, tile, label and mark the page may show, laid out for the JS callbacks."""
-    lens: dict[str, list] = dict(image=[], veil=[], scale=[], top=[], tq=[], tk=[], record=[], title=[])
+    lens: dict[str, list] = dict(image=[], veil_at=[], scale=[], top=[], tq=[], tk=[], record=[], title=[])
+    veils: dict[bytes, int] = {}  # distinct veils (shape and codes) -> position in the veil vault
+    veil_list: list[np.ndarray] = []
     names: dict[str, list] = dict(q=[], k=[])
     atlas: dict[str, list] = dict(image=[], x=[], y=[], dw=[], dh=[], item=[])
     stream: dict[str, list] = dict(image=[], x=[], y=[], dw=[], dh=[], name=[], tok=[], item=[])
     stream_range: dict[str, list] = dict(low=[], high=[])
     for item in range(scene.batch):
         for h in scene.heads:
-            a = scene.lens_arrays(h.g, item)
-            codes, scale = quantise_weights(a["image"])
-            lens["image"].append(codes)
-            lens["veil"].append(a["veil"])
+            a = scene.lens_arrays(h.g, item, labels=False)
+            codes, scale = quantise_weights(a["image"])  # (Tq', Tk') uint16
+            lens["image"].append(np.stack([codes >> 8, codes & 0xFF]).astype(np.uint8))  # (2, Tq', Tk')
+            key = repr(a["veil"].shape).encode() + a["veil"].tobytes()
+            if key not in veils:
+                veils[key] = len(veil_list)
+                veil_list.append(a["veil"])
+            lens["veil_at"].append(veils[key])
             lens["scale"].append(scale)
             lens["top"].append(a["top"])
             lens["tq"].append(a["tq"])
@@ -126,7 +135,9 @@ def _vaults(scene: Scene) -> dict[str, ColumnDataSource]:
         marks["sw"].append(m["w"][0] if m["w"] else 0)
     scores = {name: scene.score_values(name)[0] for name in STATISTICS if name in scene.scores.columns}
     ranges = {name: list(scene.score_values(name)[1:]) for name in scores}
-    return dict(vault=ColumnDataSource(lens, name="as-vault"), names=ColumnDataSource(names, name="as-names"),
+    return dict(vault=ColumnDataSource(lens, name="as-vault"), veils=ColumnDataSource(dict(veil=veil_list),
+                                                                                      name="as-veil-vault"),
+                names=ColumnDataSource(names, name="as-names"),
                 atlas_vault=ColumnDataSource(atlas, name="as-atlas-vault"),
                 stream_vault=ColumnDataSource(stream, name="as-stream-vault"),
                 stream_range=ColumnDataSource(stream_range, name="as-stream-range"),
@@ -193,12 +204,35 @@ def export_html(cap: Any, path: str | os.PathLike, tokens: Any = None, *, ids: A
 
         return export_run_html(cap, path, statistic=statistic, head=head,
                                title="attnscope training run" if title == "attnscope dashboard" else title)
+    page = page_layout(cap, tokens, ids=ids, findings=findings, checks=checks, distances=distances,
+                       statistic=statistic, head=head, tile=tile, lens_side=lens_side, max_bytes=max_bytes)
+    out = Path(path)
+    out.write_text(file_html(page, INLINE, title=title), encoding="utf-8")
+    return out
+
+
+def page_layout(cap: Any, tokens: Any = None, *, ids: Any = None, findings: Any = None, checks: Any = None,
+                distances: Any = None, statistic: str = "entropy_ratio", head: int = 0, tile: int = 24,
+                lens_side: int = 512, max_bytes: int = PAGE_BYTES) -> Any:
+    """The page's Bokeh layout (controls, summary line, views, every stored map and the JS callbacks), unwritten.
+
+    :func:`export_html` writes it with ``bokeh.embed.file_html``; the arguments are the same.
+
+    >>> import torch, attnscope
+    >>> mha = torch.nn.MultiheadAttention(8, 2, batch_first=True)
+    >>> x = torch.randn(1, 3, 8)
+    >>> with attnscope.capture(mha) as cap:
+    ...     _ = mha(x, x, x)
+    >>> page_layout(cap).name
+    'as-page'
+    """
     if max_bytes <= 0:
         raise OptionError(f"max_bytes: expected a positive number of bytes, received {max_bytes}")
     side = _lens_side_for(cap, lens_side, max_bytes)
     scene = Scene(cap, tokens, ids=ids, findings=findings, checks=checks, distances=distances,
                   statistic=statistic, tile=tile, lens_side=side)
-    scene.select(head)
+    if head != scene.g:  # the scene opens on head 0
+        scene.select(head)
     v = _vaults(scene)
     head_select = Select(title="head", options=[(str(h.g), h.label) for h in scene.heads], value=str(scene.g),
                          width=420, name="as-head-select")
@@ -235,7 +269,4 @@ fig.title.text = 'scores: ' + name + ' per head';"""))
     veil_box.js_on_change("active", CustomJS(args=dict(veil=scene.veil), code="veil.visible = this.active.includes(0);"))
     tally_row = row(Div(text="flagged heads:", name="as-tally-label"), *[_tally_button(t, head_select)
                                                                        for t in scene.tally], name="as-tally")
-    page = column(tally_row, row(head_select, item_select, stat_select, veil_box), scene.layout, name="as-page")
-    out = Path(path)
-    out.write_text(file_html(page, INLINE, title=title), encoding="utf-8")
-    return out
+    return column(tally_row, row(head_select, item_select, stat_select, veil_box), scene.layout, name="as-page")

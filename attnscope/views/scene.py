@@ -63,7 +63,7 @@ from attnscope.errors import AttnscopeWarning, OptionError, ShapeError, suggest
 from attnscope.records import STAT_COLUMNS
 from attnscope.views.findings import as_frame, as_tables, html_table
 from attnscope.views.labels import TokenLabels
-from attnscope.views.tiles import TILE_TOP, mask_codes, pool, quantise_tile
+from attnscope.views.tiles import LEAK_FLOOR, TILE_TOP, mask_codes, pool, quantise_tile
 
 __all__ = ["CAUTION", "STATISTICS", "Scene", "Tally"]
 
@@ -218,6 +218,8 @@ class Scene:
         self.scores = self._score_table()
         self.distances, self.twin_note = self._distances(cap, distances)
         self.tally = self._tally(cap, given=distances is not None)
+        self._atlas_memo: dict[int, dict[str, list]] = {}
+        self._veil_memo: dict[tuple[int, int, int], np.ndarray] = {}
         self.findings = as_tables(findings, "findings") or [("findings", as_frame(None))]
         self.checks = as_tables(checks, "checks") or [("checks", as_frame(None))]
         self._build()
@@ -527,14 +529,18 @@ class Scene:
         h = self.heads[g]
         return f"{h.record}.{h.head}"
 
-    def lens_arrays(self, g: int, item: int) -> dict[str, Any]:
-        """The selected map for display: weights (pooled past lens_side), veil codes, labels, title."""
+    def lens_arrays(self, g: int, item: int, *, labels: bool = True) -> dict[str, Any]:
+        """The selected map for display: weights (pooled past lens_side), veil codes, labels, title.
+
+        ``labels=False`` leaves the token labels out (``q`` and ``k`` are None), for callers that store them once
+        per record.
+        """
         h = self.heads[g]
         rec = self.records[h.record]
         item = min(item, rec.batch - 1)
         tq, tk = rec.queries, rec.keys
-        q = self.labels.axis(rec.name, tq, item, axis="q", kind=rec.kind, offset=rec.query_offset)
-        k = self.labels.axis(rec.name, tk, item, axis="k", kind=rec.kind)
+        q = self.labels.axis(rec.name, tq, item, axis="q", kind=rec.kind, offset=rec.query_offset) if labels else None
+        k = self.labels.axis(rec.name, tk, item, axis="k", kind=rec.kind) if labels else None
         stat = self.scores.iloc[g]
         if rec.weights is None:
             return dict(image=np.full((1, 1), np.nan, dtype=np.float32), veil=np.zeros((1, 1), np.uint8),
@@ -546,11 +552,22 @@ class Scene:
             allowed = declared_cells(rec, self.pattern)[item]
         else:
             allowed = None if rec.allowed is None else np.asarray(rec.allowed_full()[item, h.slot])
-        veil = mask_codes(w, allowed)
         pooled = max(tq, tk) > self.lens_side
+        # a veil without leaks depends on the mask alone: pooled once per mask slice, shared by the heads using it
+        key = None
+        if pooled and allowed is not None and not declared:
+            leaks = np.greater(w > LEAK_FLOOR, allowed).any()  # weight above the floor where the mask forbids
+            key = None if leaks else (h.record, item if rec.allowed.shape[0] > 1 else 0,
+                                      h.slot if rec.allowed.shape[1] > 1 else 0)
+        veil = self._veil_memo.get(key) if key is not None else None
+        if veil is None:
+            veil = mask_codes(w, allowed)
+            if pooled:
+                veil = pool(veil, self.lens_side, how="max").astype(np.uint8)
+            if key is not None:
+                self._veil_memo[key] = veil
         if pooled:
             w = pool(w, self.lens_side)
-            veil = pool(veil, self.lens_side, how="max").astype(np.uint8)
         finite = w[np.isfinite(w)]
         top = float(finite.max()) if finite.size and finite.max() > 0 else 1.0
         mask_note = "no mask applied" if rec.allowed is None else (
@@ -619,6 +636,8 @@ class Scene:
         pooled to at most ``tile`` cells a side, scaled to its own maximum and repeated up to the block size;
         one background row and column (code 255) separate neighbouring blocks.
         """
+        if item in self._atlas_memo:  # the mosaic of an item never changes: built once
+            return {key: list(v) for key, v in self._atlas_memo[item].items()}
         side, n_rec = self.tile, len(self.records)
         width = max(len(r.heads) for r in self.records)
         step = side + 1
@@ -632,7 +651,8 @@ class Scene:
             cols = np.arange(side) * tile.shape[1] // side
             r0, c0 = h.record * step, h.slot * step
             mosaic[r0:r0 + side, c0:c0 + side] = tile[rows[:, None], cols[None, :]]
-        return dict(image=[mosaic], x=[0], y=[0], dw=[width], dh=[n_rec])
+        self._atlas_memo[item] = dict(image=[mosaic], x=[0], y=[0], dw=[width], dh=[n_rec])
+        return {key: list(v) for key, v in self._atlas_memo[item].items()}
 
     def tile_of(self, mosaic: np.ndarray, g: int) -> np.ndarray:
         """The ``tile x tile`` block of head *g* in an atlas mosaic."""

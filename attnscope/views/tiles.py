@@ -26,8 +26,33 @@ def _edges(n: int, size: int) -> np.ndarray:
     return np.linspace(0, n, size + 1).round().astype(np.int64)[:-1]
 
 
+def _bins(n: int, size: int) -> tuple[np.ndarray, np.ndarray]:
+    """First position and length of each of *size* bins over *n* positions."""
+    edges = _edges(n, size)
+    return edges, np.diff(np.append(edges, n))
+
+
+def _reduce_rows(a: np.ndarray, edges: np.ndarray, counts: np.ndarray, op: np.ufunc) -> np.ndarray:
+    """*op* (add or maximum) over bins of the second-to-last axis, one gather per offset within a bin.
+
+    Sums are taken in position order in the array's dtype. Single-threaded numpy on purpose: many small
+    parallel regions stall when a shared machine's other cores are busy.
+    """
+    out = a[..., edges, :]  # a copy: the first row of every bin
+    for j in range(1, int(counts.max())):
+        idx = np.flatnonzero(counts > j)
+        if len(idx) == len(edges):
+            op(out, a[..., edges + j, :], out=out)
+        else:
+            out[..., idx, :] = op(out[..., idx, :], a[..., edges[idx] + j, :])
+    return out
+
+
 def pool(a: np.ndarray, size: int, how: str = "mean") -> np.ndarray:
     """Pool the last two axes of *a* to at most ``size x size`` cells (never upsampled).
+
+    Means are float32 sums over each block divided by the block's cell count; maxima are taken in the input's
+    dtype, so codes stay exact.
 
     Args:
         a: ``(..., Tq, Tk)`` array.
@@ -39,15 +64,18 @@ def pool(a: np.ndarray, size: int, how: str = "mean") -> np.ndarray:
     """
     tq, tk = a.shape[-2:]
     sq, sk = min(tq, size), min(tk, size)
-    out = a.astype(np.float32, copy=False)
-    for axis, n, s in ((-2, tq, sq), (-1, tk, sk)):
-        if s < n:
-            edges = _edges(n, s)
-            if how == "max":
-                out = np.maximum.reduceat(out, edges, axis=axis)
-            else:
-                counts = np.diff(np.append(edges, n)).astype(np.float32)  # (s,)
-                out = np.add.reduceat(out, edges, axis=axis) / (counts[:, None] if axis == -2 else counts)
+    mean = how != "max"
+    out = np.asarray(a, dtype=np.float32) if mean else np.asarray(a)
+    if sq < tq:
+        edges, counts = _bins(tq, sq)
+        out = _reduce_rows(out, edges, counts, np.add if mean else np.maximum)
+        if mean:
+            out /= counts[:, None].astype(np.float32)
+    if sk < tk:
+        edges, counts = _bins(tk, sk)
+        out = (np.add if mean else np.maximum).reduceat(out, edges, axis=-1)  # contiguous runs of each row
+        if mean:
+            out /= counts.astype(np.float32)
     return np.ascontiguousarray(out, dtype=np.float32)
 
 
@@ -96,5 +124,5 @@ def mask_codes(weights: np.ndarray | None, allowed: np.ndarray | None) -> np.nda
     forbidden = ~np.asarray(allowed, dtype=bool)
     codes = forbidden.astype(np.uint8)
     if weights is not None:
-        codes[forbidden & (np.nan_to_num(weights, nan=0.0) > LEAK_FLOOR)] = 2
+        codes[forbidden & (weights > LEAK_FLOOR)] = 2  # NaN compares False: never a leak
     return codes

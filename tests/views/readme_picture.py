@@ -6,7 +6,8 @@ dropdown, and the widget is photographed in Debian Chromium:
 * ``dashboard.png`` — the README's own seq2seq example, a causal decoder head;
 * ``story_causal.png`` — the decoder trained with an off-by-one mask: the lens shows weight just above the
   diagonal, and the checks table holds the behavioural probe's report;
-* ``story_heads.png`` — the heads specimen with its dead and duplicate head findings, the uniform head selected.
+* ``story_heads.png`` — the heads specimen with its dead and duplicate head findings: the summary line's duplicate
+  button clicked, so the first duplicate head is selected and marked in the clustered twins matrix.
 * ``story_masks.png`` — a FlexAttention decoder whose window is off by one, the veil showing the declared
   window of 4 keys: magenta where weight lands on the fifth key back.
 """
@@ -81,8 +82,9 @@ attnscope.dashboard(cap, pattern=declared, checks=attnscope.pattern_table(cap, d
 '''
 MASKS_HEAD = "blocks.0.attn · head 0"
 
-PICTURES = (("dashboard", README_CELL, HEAD), ("story_causal", CAUSAL_CELL, CAUSAL_HEAD),
-            ("story_heads", HEADS_CELL, HEADS_HEAD), ("story_masks", MASKS_CELL, MASKS_HEAD))
+# (name, cell, head chosen in the dropdown, summary-line button clicked after it or None)
+PICTURES = (("dashboard", README_CELL, HEAD, None), ("story_causal", CAUSAL_CELL, CAUSAL_HEAD, None),
+            ("story_heads", HEADS_CELL, HEADS_HEAD, "duplicate"), ("story_masks", MASKS_CELL, MASKS_HEAD, None))
 ONLY = sys.argv[1:]  # names of the pictures to take (default: all)
 
 
@@ -94,7 +96,7 @@ def main() -> None:
     work = Path(tempfile.mkdtemp(prefix="attnscope-picture-"))
     with jupyter_lab(work / "lab") as lab, sync_playwright() as p, \
             chromium(p, work / "profile", width=1900, height=2200) as ctx:
-        for name, cell, head in PICTURES:
+        for name, cell, head, tally in PICTURES:
             if ONLY and name not in ONLY:
                 continue
             views_notebooks.write(lab["root"] / f"{name}.ipynb", cell)
@@ -105,6 +107,9 @@ def main() -> None:
             board.locator(".as-plot canvas").first.wait_for(state="visible", timeout=90_000)
             board.locator(".as-head select").select_option(label=head)
             board.locator(".as-status", has_text=head).wait_for(timeout=30_000)
+            if tally is not None:  # the summary line's button: the next flagged head of that kind
+                board.locator(f".as-tally-{tally}").click()
+                board.locator(".as-status", has_text=f"· {tally} 1 of").wait_for(timeout=30_000)
             page.wait_for_timeout(1500)  # let every figure repaint
             shot = root / "artifacts" / f"{name}_readme.png"
             board.screenshot(path=str(shot))

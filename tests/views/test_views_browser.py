@@ -329,3 +329,78 @@ def test_exported_page_at_144_heads_and_1024_positions(playwright, tmp_path, tmp
         ARTIFACTS.mkdir(exist_ok=True)
         page.screenshot(path=str(ARTIFACTS / "page_144_heads.png"), full_page=True)
         assert not page.problems
+
+
+# The twins matrix and the atlas as BokehJS holds them: row labels of the twins (clustered order), axis models.
+TWINS_JS = """() => {
+  for (const d of Bokeh.documents) {
+    const f = d.get_model_by_name('as-twins'), a = d.get_model_by_name('as-atlas');
+    if (!f || !a) continue;
+    const labels = (axis) => Object.entries(axis.major_label_overrides instanceof Map
+      ? Object.fromEntries(axis.major_label_overrides) : axis.major_label_overrides).map(([k, v]) => [Number(k), v]);
+    return {rows: Array.from(d.get_model_by_name('as-glab').data.tok), twin_y: labels(f.left[0]),
+            twin_title: f.title.text, twin_axis: f.left[0].axis_label, image: f.renderers[0].data_source.data.dw[0],
+            atlas_y: labels(a.left[0]).map(e => e[1]), atlas_x: labels(a.below[0]).map(e => e[1]),
+            cells: {record: Array.from(d.get_model_by_name('as-cells').data.record),
+                    head: Array.from(d.get_model_by_name('as-cells').data.head)}};
+  }
+  return null; }"""
+
+
+def test_dashboard_in_jupyterlab_at_144_heads_and_1024_positions(lab, browser):
+    """GPT-2-small's shape (12 x 12 heads, T=1024; narrow width) in JupyterLab: render, twins tap, summary line."""
+    import re
+
+    views_notebooks.write(lab["root"] / "gpt2_144.ipynb", views_notebooks.GPT2_144)
+    page = watch(browser.new_page())
+    open_notebook(page, lab, "gpt2_144")
+    t0 = time.perf_counter()
+    run_all(page)
+    board = page.locator(".jp-NotebookPanel:not(.lm-mod-hidden) .jp-OutputArea-output .as-dashboard")
+    canvas = board.locator(".as-plot canvas").first
+    js_error = page.get_by_text("Click to show javascript error.")
+    canvas.or_(js_error).first.wait_for(state="visible", timeout=120_000)
+    assert not js_error.count(), "\n".join(page.problems)
+    page.wait_for_function(f"() => ({SMALL_STATE_JS})()?.idle === true", timeout=60_000)
+    TIMINGS["run_all_to_first_render_144_heads_s"] = round(time.perf_counter() - t0, 2)
+    assert "h.0.attn · head 0" in page.evaluate(SMALL_STATE_JS)["title"]
+    assert page.evaluate(COLOURS_JS, ["as-atlas"]) > 10 and page.evaluate(COLOURS_JS, ["as-twins"]) > 10
+    assert page.evaluate(COLOURS_JS, ["as-lens"]) > 10
+
+    # heads grouped by layer: one atlas row per layer, one column per head; the twins axis names layer.head
+    t = page.evaluate(TWINS_JS)
+    assert t["atlas_y"] == [f"h.{i}.attn" for i in range(12)] and t["atlas_x"] == [f"h{j}" for j in range(12)]
+    assert t["image"] == 144 and len(t["rows"]) == 144 and t["twin_axis"] == "head (layer.head)"
+    assert len(t["twin_y"]) == 36 and all(re.fullmatch(r"\d+\.\d+", v) for _, v in t["twin_y"])
+    assert "given" in t["twin_title"]
+    # the clustered order is a permutation of the 144 heads (not capture order), and each axis label names the
+    # head whose row it marks
+    labels = [f"{r} · head {h}" for r, h in zip(t["cells"]["record"], t["cells"]["head"])]
+    assert sorted(t["rows"]) == sorted(labels) and t["rows"] != labels
+    for y, name in t["twin_y"]:
+        layer, head = name.split(".")
+        assert t["rows"][int(y)] == f"h.{layer}.attn · head {head}"
+
+    # a tap on row 100 of the twins matrix selects the head drawn there, in every view and in the kernel
+    row = 100
+    g = labels.index(t["rows"][row])
+    tap(page, "as-twins", 20.5, row + 0.5)
+    page.wait_for_function(f"() => ({SMALL_STATE_JS})().twin_y[0] === {row + 0.5}", timeout=30_000)
+    page.wait_for_function(f"() => ({SMALL_STATE_JS})().title.includes({json.dumps(t['rows'][row])})", timeout=30_000)
+    board.locator(".as-status", has_text=f"showing {t['rows'][row]} ·").wait_for(timeout=30_000)
+    assert page.evaluate("""() => { for (const d of Bokeh.documents) { const c = d.get_model_by_name('as-cells');
+      if (c) return Array.from(c.selected.indices); } }""") == [g]
+
+    # the summary line: one button per flagged kind, counts as text; an enabled one selects a flagged head
+    texts = {kind: board.locator(f".as-tally-{kind}").inner_text() for kind in ("dead", "duplicate", "leaking")}
+    assert re.fullmatch(r"\d+ dead", texts["dead"]) and re.fullmatch(r"\d+ leaking", texts["leaking"])
+    assert re.fullmatch(r"\d+ duplicate \(\d+ pairs?\)", texts["duplicate"])
+    assert texts["leaking"] == "0 leaking"  # HF's eager causal mask: no weight on a forbidden key
+    kind = next(k for k, v in texts.items() if not v.startswith("0 "))
+    board.locator(f".as-tally-{kind}").click()
+    board.locator(".as-status", has_text=re.compile(rf"· {kind} \d+ of {texts[kind].split()[0]}$")).wait_for(
+        timeout=30_000)
+    page.wait_for_timeout(500)
+    board.screenshot(path=str(ARTIFACTS / "dashboard_lab_144_heads.png"))
+    assert not page.problems, page.problems
+    page.close()

@@ -33,14 +33,22 @@ def test_page_is_self_contained_and_escaped(translator, tmp_path):
 
 def test_page_stores_every_map_within_half_a_code_step(translator):
     scene = Scene(translator)
-    v = _vaults(scene)["vault"].data
+    vaults = _vaults(scene)
+    v, veils = vaults["vault"].data, vaults["veils"].data["veil"]
     assert len(v["image"]) == scene.batch * len(scene.heads)
     for item in range(scene.batch):
         for h in scene.heads:
             idx = item * len(scene.heads) + h.g
-            w = translator.attention[h.record].weights[item, h.slot]
-            # uint16 codes: weight ≈ code * scale, at most half a step off
-            assert np.abs(v["image"][idx] * v["scale"][idx] - w).max() <= v["scale"][idx] / 2 + 1e-9
+            rec = translator.attention[h.record]
+            w = rec.weights[item, h.slot]
+            # uint16 codes as two byte planes (high, low): weight ≈ (256 * high + low) * scale, half a step off
+            high, low = v["image"][idx].astype(np.int64)
+            assert np.abs((256 * high + low) * v["scale"][idx] - w).max() <= v["scale"][idx] / 2 + 1e-9
+            # the shared veil: grey (1) exactly where the call's own mask forbids, no leak (2) in torch's maps
+            forbidden = ~np.broadcast_to(rec.allowed, rec.weights.shape)[item, h.slot] if rec.allowed is not None \
+                else np.zeros(w.shape, bool)
+            assert np.array_equal(veils[v["veil_at"][idx]], forbidden.astype(np.uint8))
+    assert len(veils) < len(v["image"])  # stored once per distinct veil, not once per map
 
 
 def test_page_pools_maps_past_its_byte_budget(translator, tmp_path):

@@ -133,3 +133,30 @@ def test_html_table_escapes_headers_and_cells():
     page = html_table(frame, HOSTILE)
     assert HOSTILE not in page
     assert page.count("&lt;script&gt;alert(1)&lt;/script&gt;") == 3  # title, header and cell
+
+
+@pytest.mark.parametrize("case", ["translator", "leaky"])
+def test_pooled_veils_shared_between_heads_equal_each_heads_own(case, request):
+    """A veil without leaks is pooled once per mask and shared; each head's veil still equals its own."""
+    from attnscope.views.scene import Scene
+
+    cap = request.getfixturevalue(case)
+    from attnscope.errors import AttnscopeWarning
+
+    with pytest.warns(AttnscopeWarning, match="pooled to"):  # said, not silent
+        scene = Scene(cap, lens_side=2) if case == "translator" else Scene(cap, lens_side=4)
+    for item in range(scene.batch):
+        for h in scene.heads:
+            rec = cap.attention[h.record]
+            w = rec.weights[item, h.slot]
+            allowed = None if rec.allowed is None else np.broadcast_to(rec.allowed, rec.weights.shape)[item, h.slot]
+            # the veil from scratch: 1 where the call's mask forbids, 2 where a forbidden cell holds weight
+            own = np.zeros(w.shape, np.uint8) if allowed is None else np.where(~allowed, np.where(w > 1e-6, 2, 1), 0)
+            side = scene.lens_side
+            if max(w.shape) > side:
+                own = pool(own.astype(np.uint8), side, how="max")
+            assert np.array_equal(scene.lens_arrays(h.g, item)["veil"], own)
+    if case == "leaky":  # the planted bug: weight beyond the causal mask shows as leak cells
+        assert (scene.lens_arrays(0, 0)["veil"] == 2).any()
+    else:
+        assert scene._veil_memo  # the decoder's causal heads share pooled veils

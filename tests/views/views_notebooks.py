@@ -28,6 +28,25 @@ board = attnscope.views.dashboard(cap, tokens={{"source": source, "target": targ
 board
 """
 
+# GPT-2-small's shape (12 layers x 12 heads, T=1024) with a narrow width to keep the forward cheap; random
+# weights from a config (no download). The twins matrix gets its distances from the heads' mean key profiles
+# (scipy's Jensen–Shannon distance, about a second) rather than head_distances over every row (much longer).
+GPT2_144 = """\
+import numpy as np, torch, transformers, attnscope
+from scipy.spatial.distance import jensenshannon, pdist, squareform
+torch.manual_seed(0)
+cfg = transformers.GPT2Config(n_layer=12, n_head=12, n_embd=96, n_positions=1024, vocab_size=500,
+                              resid_pdrop=0.0, embd_pdrop=0.0, attn_pdrop=0.0)
+model = transformers.GPT2Model._from_config(cfg, attn_implementation="eager").eval()
+ids = torch.randint(0, 500, (1, 1024))
+with torch.no_grad(), attnscope.capture(model) as cap:
+    model(ids)
+profiles = np.concatenate([r.weights[0].mean(axis=1) for r in cap.attention])  # (144, 1024) mean weight per key
+distances = squareform(pdist(profiles, jensenshannon))
+board = attnscope.dashboard(cap, tokens=[f"w{i}" for i in range(1024)], distances=distances)
+board
+"""
+
 
 def write(path: Path, *cells: str) -> Path:
     nb = new_notebook(cells=[new_code_cell(c) for c in cells])
