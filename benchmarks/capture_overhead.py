@@ -190,9 +190,12 @@ def memory(kind: str, keep: str, batch: int, seq: int) -> tuple[int, int]:
             "plain = b._peak_of(lambda: b.forward(m, a));"
             f"cap = b._peak_of(lambda: b.captured(m, a, {keep!r}));"
             f"print(json.dumps([cap - plain, b.kept_bytes(b.captured(m, a, {keep!r}))]))")
+    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))  # the repository: `benchmarks` imports
+    if root not in sys.path:
+        sys.path.insert(0, root)
     from benchmarks.scale import EXACT_RSS  # glibc returns freed blocks: RSS follows live memory
 
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=root,
                          env={**os.environ, **EXACT_RSS})
     peak, kept = json.loads(out.stdout.strip().splitlines()[-1])
     return int(peak), int(kept)

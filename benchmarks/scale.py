@@ -163,7 +163,8 @@ def capture_memory(seq: int) -> dict[str, float]:
     import sys
 
     code = ("import json, benchmarks.scale as s; print('RESULT', json.dumps(s._capture_memory_here(%d)))" % seq)
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
+    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))  # where `benchmarks` imports from
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=root,
                          env={**os.environ, **EXACT_RSS}).stdout
     return json.loads(next(line for line in out.splitlines() if line.startswith("RESULT"))[len("RESULT "):])
 
