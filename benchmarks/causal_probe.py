@@ -19,7 +19,7 @@ from __future__ import annotations
 import argparse
 import statistics
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Collection
 from typing import Any
 
 import torch
@@ -60,9 +60,13 @@ def naive_loop(model: nn.Module, ids: torch.Tensor, tol: float = 1e-4) -> torch.
     return dep > tol
 
 
-def timed(methods: dict[str, Callable[[], Any]], repeat: int) -> dict[str, tuple[float, Any]]:
-    """Median seconds and last result of each method; the methods take turns, so they share the load."""
-    results = {name: fn() for name, fn in methods.items()}  # warm-up
+def timed(methods: dict[str, Callable[[], Any]], repeat: int,
+          cold: Collection[str] = ()) -> dict[str, tuple[float, Any]]:
+    """Median seconds and last result of each method; the methods take turns, so they share the load.
+
+    Every method but those named in *cold* runs once first, untimed (warm-up); ``repeat`` must be at least 1.
+    """
+    results = {name: fn() for name, fn in methods.items() if name not in cold}  # warm-up
     times: dict[str, list[float]] = {name: [] for name in methods}
     for _ in range(repeat):
         for name, fn in methods.items():

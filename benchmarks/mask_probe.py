@@ -20,16 +20,13 @@ from __future__ import annotations
 
 import argparse
 import math
-import statistics
-import time
-from collections.abc import Callable
-from typing import Any
 
 import torch
 from torch import nn
 
 from attnscope.analyses.contracts import check_mask
 from attnscope.analyses.patterns import documents_pattern, window_pattern
+from causal_probe import timed  # benchmarks/ is the script's own directory
 
 T, WIDTH, LAYERS, HEADS, VOCAB, WINDOW = 256, 64, 2, 4, 256, 16
 DOCS = torch.repeat_interleave(torch.arange(8), torch.tensor([40, 17, 33, 25, 48, 30, 36, 27]))[None]  # (1, T)
@@ -81,18 +78,6 @@ def naive_loop(model: nn.Module, ids: torch.Tensor, allowed: torch.Tensor, tol: 
     return True
 
 
-def timed(methods: dict[str, Callable[[], Any]], repeat: int) -> dict[str, tuple[float, Any]]:
-    """Median seconds and last result of each method; the methods take turns, so they share the load."""
-    results = {name: fn() for name, fn in methods.items() if name != "loop"}  # warm-up (the loop is its own)
-    times: dict[str, list[float]] = {name: [] for name in methods}
-    for _ in range(repeat):
-        for name, fn in methods.items():
-            start = time.perf_counter()
-            results[name] = fn()
-            times[name].append(time.perf_counter() - start)
-    return {name: (statistics.median(times[name]), results[name]) for name in methods}
-
-
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--repeat", type=int, default=1)
@@ -120,7 +105,7 @@ def main() -> None:
             "floor": one_forward,
             "loop": lambda: naive_loop(model, ids, declared[name]),
             "screen": lambda: check_mask(model, ids, declared[name], mode="screen"),
-        }, args.repeat)
+        }, args.repeat, cold=("loop",))  # the loop is its own warm-up
         (floor_s, _), (loop_s, loop_ok), (screen_s, screen) = runs["floor"], runs["loop"], runs["screen"]
         assert loop_ok and screen.ok, "the benchmark models keep to their declared patterns"
         ratio = (T + 1) / screen.forwards
