@@ -18,13 +18,14 @@ precision pieces are widened to float32 one piece at a time. Per-row values are 
 from __future__ import annotations
 
 import functools
+import math
 
 import numpy as np
 import torch
 
 from attnscope.records import HeadSums
 
-__all__ = ["PIECE_BYTES", "head_sums"]
+__all__ = ["PIECE_BYTES", "ROW_BLOCK_MIN", "head_sums", "score_sums"]
 
 #: Bytes of float32 weights one piece holds. The piece and its one temporary of the same size are split between
 #: torch's intra-op threads and stay in cache while every statistic is taken. Measured on the reference machine
@@ -132,11 +133,18 @@ def head_sums(weights: torch.Tensor, allowed: torch.Tensor | None = None, query_
         w.gather(-1, first.reshape(b, h, tq, 1)).reshape(b, h, tq).to(w_dtype)  # (B, H, Tq)
     rows = {k: v.view(b, h, tq) for k, v in rows.items()}
     rows["sink"] = sink
+    rows["entropy"] = rows["entropy"].neg_()  # -Σ w ln w
+    return _totals(rows, n_allowed)
+
+
+def _totals(rows: dict[str, torch.Tensor], n_allowed: torch.Tensor) -> HeadSums:
+    """Per-head sums of per-row values ``(B, H, Tq)`` (keys ``sum``, ``entropy``, ``max``, ``sink``, ``distance``,
+    ``leak``) over the rows that count: finite, with at least one allowed key (*n_allowed*, ``(B, H, Tq)``)."""
     # weights are >= 0, so a NaN or inf anywhere in a row shows in its sum
     finite = torch.isfinite(rows["sum"])  # (B, H, Tq)
     counted = finite & (n_allowed >= 1)
     with_choice = counted & (n_allowed >= 2)
-    entropy = -rows["entropy"]
+    entropy = rows["entropy"]
     ratio = entropy / torch.log(n_allowed.clamp_min(2).to(entropy.dtype))
 
     def total(x: torch.Tensor, where: torch.Tensor) -> np.ndarray:
@@ -154,3 +162,97 @@ def head_sums(weights: torch.Tensor, allowed: torch.Tensor | None = None, query_
         leak_mass=total(rows["leak"], counted),
         nonfinite=(~finite).double().sum(dim=(0, 2)).numpy(),
     )
+
+
+#: Query rows of one block of :func:`score_sums`: at least this many, else an eighth of the queries, so a causal
+#: or windowed mask leaves out most of the products above the diagonal while each block stays a good matrix product.
+ROW_BLOCK_MIN = 32
+
+
+def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = None, scale: float | None = None,
+               query_offset: int = 0) -> HeadSums:
+    """Per-head sums of the weights ``softmax(Q Kᵀ · scale)`` over the *allowed* keys, without forming the map.
+
+    What :func:`head_sums` gives for the weights :func:`attnscope.capture.masks.sdpa_weights` would build with a
+    bool mask (forbidden keys -inf, rows with no allowed key all zero), up to float rounding, for a fraction of
+    the work: statistics that observe a fused attention call (``keep="stats"``) need no weights, only their sums.
+
+    The queries are taken in blocks of rows (:data:`ROW_BLOCK_MIN`); each block computes only the keys some row
+    of it may see, so a causal or sliding-window mask skips most products it forbids. Each piece (at most
+    :data:`PIECE_BYTES` of scores) is reduced while it is in cache, as :func:`head_sums` reduces weights with
+    their scores (the entropy with one logarithm per row). Forbidden keys get exactly zero weight (``exp(-inf)``),
+    so the leak mass is 0.
+
+    Args:
+        q: ``(B, H, Tq, E)`` queries.
+        k: ``(B, H, Tk, E)`` keys, one key head per query head (expand grouped keys first).
+        allowed: bool, broadcastable to ``(B, H, Tq, Tk)``, True where a query may see a key; None: every key.
+        scale: the score scale (default ``1/sqrt(E)``, as ``scaled_dot_product_attention``).
+        query_offset: absolute position of query 0 on the key axis, for ``mean_distance``.
+    """
+    q, k = q.detach().float(), k.detach().float()
+    b, h, tq, e_dim = q.shape
+    tk = k.shape[-2]
+    n = b * h
+    scale = 1.0 / math.sqrt(e_dim) if scale is None else scale
+    q3 = (q * scale).reshape(n, tq, e_dim)  # (B*H, Tq, E)  scaling q is the cheaper side, as sdpa_weights does
+    k3 = k.reshape(n, tk, e_dim)  # (B*H, Tk, E)
+    a = None if allowed is None else allowed.to(torch.bool)
+    while a is not None and a.dim() < 4:
+        a = a.unsqueeze(0)
+    if a is not None:
+        a = a.expand(a.shape[0], a.shape[1], tq, tk)  # (B or 1, H or 1, Tq, Tk)
+    bias = None  # a mask shared by every map, as -inf where forbidden: a piece adds it
+    if a is not None and a.shape[0] == 1 and a.shape[1] == 1:
+        bias = torch.zeros(tq, tk).masked_fill_(~a[0, 0], float("-inf"))  # (Tq, Tk)
+    seen = None if a is None else a.any(dim=1).any(dim=0)  # (Tq, Tk) keys some map's query may see
+    if a is None:
+        n_allowed = torch.full((b, h, tq), tk, dtype=torch.int64)
+        first = torch.zeros(n, tq, dtype=torch.int64)
+    else:
+        n_allowed = a.sum(dim=-1).expand(b, h, tq)  # (B, H, Tq)
+        first = a.to(torch.uint8).argmax(dim=-1).expand(b, h, tq).reshape(n, tq)  # first allowed key
+    dist = _distance_matrix(tq, tk, int(query_offset))  # (Tq, Tk)
+    keys = ("sum", "entropy", "max", "distance", "sink")
+    rows = {key: torch.zeros(n, tq) for key in keys}  # per row; rows of blocks that see no key stay 0
+    rb = min(tq, max(ROW_BLOCK_MIN, -(-tq // 8)))
+    for r0 in range(0, tq, rb):
+        r1 = min(tq, r0 + rb)
+        k0, k1 = 0, tk
+        if seen is not None:
+            cols = seen[r0:r1].any(dim=0).nonzero()
+            if cols.numel() == 0:
+                continue  # no row of the block sees a key: every weight is 0
+            k0, k1 = int(cols[0]), int(cols[-1]) + 1
+        per = max(1, PIECE_BYTES // ((r1 - r0) * (k1 - k0) * 4))
+        buf = torch.empty(min(per, n), r1 - r0, k1 - k0)  # (s, r, K)  scores, then products
+        wbuf = torch.empty_like(buf)  # (s, r, K)  the piece's weights
+        block = {key: torch.empty(n, r1 - r0) for key in keys}
+        for s0 in range(0, n, per):
+            s1 = min(n, s0 + per)
+            sc = torch.bmm(q3[s0:s1, r0:r1], k3[s0:s1, k0:k1].transpose(1, 2), out=buf[:s1 - s0])  # (s, r, K)
+            if bias is not None:
+                sc.add_(bias[r0:r1, k0:k1])
+            elif a is not None:
+                idx = torch.arange(s0, s1)
+                ap = a[idx // h if a.shape[0] > 1 else 0, idx % h if a.shape[1] > 1 else 0, r0:r1, k0:k1]
+                sc.masked_fill_(~ap.expand_as(sc), float("-inf"))  # (s, r, K)
+            w = torch.softmax(sc, dim=-1, out=wbuf[:s1 - s0])  # (s, r, K)  (softmax's exponential is the fast one)
+            m = sc.amax(dim=-1, keepdim=True)  # (s, r, 1)
+            m.masked_fill_(torch.isneginf(m), 0.0)  # a row with no allowed key (its weights are NaN, set to 0 below)
+            torch.nansum(sc.sub_(m).mul_(w), dim=-1, out=block["entropy"][s0:s1])  # Σ w (s - m); -inf · 0 skipped
+            torch.sum(w, dim=-1, out=block["sum"][s0:s1])
+            torch.amax(w, dim=-1, out=block["max"][s0:s1])
+            torch.sum(torch.mul(w, dist[r0:r1, k0:k1], out=sc), dim=-1, out=block["distance"][s0:s1])
+            pick = (first[s0:s1, r0:r1] - k0).clamp_(0, k1 - k0 - 1).unsqueeze(-1)  # (s, r, 1)
+            block["sink"][s0:s1] = w.gather(-1, pick).squeeze(-1)
+        for key in keys:
+            rows[key][:, r0:r1] = block[key]
+    rows = {key: v.view(b, h, tq) for key, v in rows.items()}
+    empty = n_allowed == 0  # (B, H, Tq)  all zeros, as sdpa_weights leaves them (softmax gave NaN)
+    for key in keys:
+        rows[key].masked_fill_(empty, 0.0)
+    top = rows["max"]
+    rows["entropy"] = -rows["entropy"] - torch.where(top > 0, top.log() * rows["sum"], 0.0)  # - ln max(w) * Σ w
+    rows["leak"] = torch.zeros(b, h, tq)
+    return _totals(rows, n_allowed)

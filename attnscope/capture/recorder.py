@@ -205,7 +205,8 @@ class Recorder:
     def record(self, frame: Frame, kind: str, shape: tuple[int, int, int, int], heads: tuple[int, ...],
                allowed: torch.Tensor | None, causal: bool, source: str, offset: int, compute: Compute,
                replace_at: int | None = None, builds: bool = False, scores: torch.Tensor | None = None,
-               scored: Callable[[slice, list], tuple[torch.Tensor, torch.Tensor]] | None = None) -> int:
+               scored: Callable[[slice, list], tuple[torch.Tensor, torch.Tensor]] | None = None,
+               sums: Callable[[list], HeadSums] | None = None) -> int:
         """Keep one call (maps or statistics) and return its index in :attr:`attention`.
 
         ``allowed`` is the compact ``(B or 1, H or 1, Tq, Tk)`` bool mask or None; ``replace_at`` refines an
@@ -214,7 +215,9 @@ class Recorder:
         whole-map temporary (scores beside weights) exists at any time. ``scores`` are the ``(B, H, Tq, Tk)``
         softmax input of weights that exist already (the softmax path): ``keep="stats"`` then takes the entropy
         from them without a logarithm per weight (:func:`~attnscope.stats.head_sums`); ``scored`` is a *compute*
-        that builds ``(weights, masked scores)`` for the same purpose (a recomputation).
+        that builds ``(weights, masked scores)`` for the same purpose (a recomputation). ``sums(heads)`` reduces
+        the call to statistics without forming its map (:func:`~attnscope.stats.score_sums`); ``keep="stats"``
+        uses it when given.
         """
         b, _, tq, tk = shape
         target = frame.target()
@@ -243,6 +246,8 @@ class Recorder:
             self.borrowed.append((target.name, weights, weights._version))
             if replace_at is None:
                 self.counters.kept_bytes += size
+        elif sums is not None:
+            stats, kept = sums(list(heads)), None
         else:
             stats = _reduce(compute, b, shape[1], heads, allowed, offset, tq * tk * 4, builds, scores, scored)
             kept = None

@@ -333,3 +333,63 @@ def test_stats_of_recomputed_sdpa_calls_equal_brute_force_on_their_maps(mask_kin
     expect = brute_means(rec.weights, rec.allowed, rec.query_offset)  # from the kept maps, brute force
     for key, val in expect.items():
         np.testing.assert_allclose(stats.attention[0].stats.means()[key], val, rtol=1e-6, atol=1e-6, err_msg=key)
+
+
+def _independent_weights(q, k, allowed, scale):
+    """softmax(Q Kᵀ·scale) with forbidden keys at -inf, in float64; rows with no allowed key all zero."""
+    s = (q.double() @ k.double().transpose(-2, -1)) * scale
+    s = s.masked_fill(~allowed, float("-inf"))
+    w = torch.softmax(s, dim=-1)
+    return torch.nan_to_num(w, nan=0.0).numpy()
+
+
+@pytest.mark.parametrize("case", ["causal", "window", "decode step", "per-item bool with an empty row", "none"])
+def test_statistics_from_scores_without_a_map_equal_brute_force(monkeypatch, case):
+    # small pieces and row blocks: many blocks, each with its own cut of keys, several pieces per block
+    monkeypatch.setattr(attnscope.stats, "PIECE_BYTES", 512)
+    monkeypatch.setattr(attnscope.stats, "ROW_BLOCK_MIN", 3)
+    torch.manual_seed(1)
+    b, h, tq, tk, e = 2, 3, 13, 13, 4
+    offset = 0
+    if case == "decode step":
+        tq, offset = 4, 9  # 4 new queries after 9 cached keys
+    q, k = torch.randn(b, h, tq, e) * 3, torch.randn(b, h, tk, e) * 3
+    i = torch.arange(tq)[:, None] + offset
+    j = torch.arange(tk)[None, :]
+    allowed = {"causal": j <= i, "window": (j <= i) & (j > i - 4), "decode step": j <= i,
+               "per-item bool with an empty row": torch.rand(b, 1, tq, tk) > 0.4,
+               "none": torch.ones(tq, tk, dtype=torch.bool)}[case]
+    allowed = allowed.expand(b, h, tq, tk).clone() if allowed.dim() == 4 else allowed[None, None]
+    if case.startswith("per-item"):
+        allowed[1, :, 5] = False  # a query that sees no key
+    scale = 0.37
+    w = _independent_weights(q, k, allowed.expand(b, h, tq, tk), scale)
+    expect = brute_means(w, allowed.numpy(), offset)  # float64 numpy and scipy, row by row
+    got = attnscope.stats.score_sums(q, k, None if case == "none" else allowed, scale, offset).means()
+    for key, val in expect.items():
+        np.testing.assert_allclose(got[key], val, rtol=1e-6, atol=1e-6, err_msg=key)
+    assert got["leak_mass"].tolist() == [0.0] * h
+
+
+def test_stats_of_a_fused_call_form_no_map(monkeypatch):
+    """keep="stats" of an SDPA call with a bool mask reduces scores piece by piece; the whole map never exists."""
+    largest = []
+    real_bmm = torch.bmm
+
+    def watch(a, b_, *args, **kw):
+        out = real_bmm(a, b_, *args, **kw)
+        largest.append(out.numel())
+        return out
+
+    monkeypatch.setattr(attnscope.stats.torch, "bmm", watch)
+    q = k = v = torch.randn(2, 4, 64, 8)
+
+    class Block(nn.Module):
+        def forward(self, q, k, v):
+            return F.scaled_dot_product_attention(q, k, v, is_causal=True)
+
+    block = Block()
+    with attnscope.capture(block, layers=[""], residual=False, keep="stats") as cap:
+        block(q, k, v)
+    assert cap.attention[0].stats is not None and largest
+    assert sum(largest) < 2 * 4 * 64 * 64  # causal: blocks above the diagonal are skipped

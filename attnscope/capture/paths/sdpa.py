@@ -8,6 +8,9 @@ Grouped-query decode steps packed as ``(B, H_kv, n_rep, E)`` queries (one query 
 key/value heads, as HF transformers does for a single token with a mask) are unpacked to
 ``(B, H_q, 1, E)`` when the owning module declares ``num_key_value_groups`` and its head count.
 
+With ``keep="stats"`` and a bool mask (or none) no map is formed: :func:`attnscope.stats.score_sums` reduces
+the scores piece by piece, skipping the blocks of keys the mask forbids to every query of a block.
+
 With ``capture(..., sdpa="weights")`` the call is not run at all: capture builds the weights of every head and
 returns ``weights @ V`` as the call's output (equal to the kernel's up to float rounding), so attention is
 computed once.
@@ -20,6 +23,7 @@ import torch.nn.functional as F
 
 from attnscope.capture import masks, rules
 from attnscope.capture.recorder import Recorder, as_4d, take
+from attnscope.stats import score_sums
 
 SOURCE = "sdpa"
 FUNCS = (F.scaled_dot_product_attention,)
@@ -63,9 +67,18 @@ def on_call(rec: Recorder, func, args, kwargs):
         return masks.sdpa_weights(q4[sl][:, hs], k4[sl][:, kh], m, is_causal, p.get("scale"),
                                   with_scores=with_scores)
 
+    def sums(hs: list[int]):
+        """keep="stats" of a call whose mask is a bool one (or none): no map is formed (score_sums)."""
+        kh = [h // rep for h in hs] if k4.shape[1] > 1 else [0] * len(hs)
+        a = allowed if allowed is None or allowed.shape[1] == 1 else allowed[:, hs]
+        qq = q4[:, hs]  # (B, h, Tq, E)
+        kk = k4[:, kh].expand(b, len(hs), *k4.shape[-2:])  # (B, h, Tk, E)
+        return score_sums(qq, kk, a, p.get("scale"), offset)
+
     causal = is_causal or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset))
     rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute, builds=True,
-               scored=lambda sl, hs: compute(sl, hs, with_scores=True))
+               scored=lambda sl, hs: compute(sl, hs, with_scores=True),
+               sums=sums if mask4 is None or mask4.dtype == torch.bool else None)
     return out
 
 
