@@ -346,7 +346,7 @@ def _independent_weights(q, k, allowed, scale):
 @pytest.mark.parametrize("case", ["causal", "window", "decode step", "per-item bool with an empty row", "none"])
 def test_statistics_from_scores_without_a_map_equal_brute_force(monkeypatch, case):
     # small pieces and row blocks: many blocks, each with its own cut of keys, several pieces per block
-    monkeypatch.setattr(attnscope.stats, "PIECE_BYTES", 512)
+    monkeypatch.setattr(attnscope.stats, "SCORE_PIECE_BYTES", 512)
     monkeypatch.setattr(attnscope.stats, "ROW_BLOCK_MIN", 3)
     torch.manual_seed(1)
     b, h, tq, tk, e = 2, 3, 13, 13, 4
@@ -382,7 +382,7 @@ def test_stats_of_a_fused_call_form_no_map(monkeypatch):
         return out
 
     monkeypatch.setattr(attnscope.stats.torch, "bmm", watch)
-    q = k = v = torch.randn(2, 4, 64, 8)
+    q = k = v = torch.randn(2, 4, 256, 8)
 
     class Block(nn.Module):
         def forward(self, q, k, v):
@@ -392,4 +392,39 @@ def test_stats_of_a_fused_call_form_no_map(monkeypatch):
     with attnscope.capture(block, layers=[""], residual=False, keep="stats") as cap:
         block(q, k, v)
     assert cap.attention[0].stats is not None and largest
-    assert sum(largest) < 2 * 4 * 64 * 64  # causal: blocks above the diagonal are skipped
+    whole = 2 * 4 * 256 * 256
+    assert max(largest) < whole  # piece by piece
+    assert sum(largest) < 0.7 * whole  # causal: the key blocks above the diagonal are never multiplied
+
+
+@pytest.mark.parametrize("batch_first", [True, False])
+def test_stats_of_torch_multihead_attention_take_its_scores_and_equal_brute_force(monkeypatch, batch_first):
+    """keep="stats" of nn.MultiheadAttention with a causal and a padding mask: the statistics reduce the scores
+    torch's math path gave its softmax, and equal float64 brute force on torch's own per-head weights
+    (``need_weights=True, average_attn_weights=False``) to 1e-6."""
+    torch.manual_seed(0)
+    mha = nn.MultiheadAttention(16, 4, batch_first=batch_first).eval()
+    x = torch.randn(3, 9, 16)  # (B, T, E)
+    xin = x if batch_first else x.transpose(0, 1)
+    causal = torch.ones(9, 9, dtype=torch.bool).triu(1)  # True = masked (torch's convention)
+    pad = torch.zeros(3, 9, dtype=torch.bool)
+    pad[1, 6:] = True  # item 1 ends at 6
+    with torch.no_grad():
+        _, w = mha(xin, xin, xin, attn_mask=causal, key_padding_mask=pad, need_weights=True,
+                   average_attn_weights=False)  # torch's own weights, outside capture
+    seen = []
+    real = attnscope.stats.head_sums
+
+    def watch(weights, allowed, offset=0, scores=None):
+        seen.append(scores is not None)
+        return real(weights, allowed, offset, scores)
+
+    monkeypatch.setattr(importlib.import_module("attnscope.capture.recorder"), "head_sums", watch)
+    with torch.no_grad(), attnscope.capture(mha, layers=[""], residual=False, keep="stats") as cap:
+        mha(xin, xin, xin, attn_mask=causal, key_padding_mask=pad, need_weights=False)
+    allowed = (~causal)[None, None] & (~pad)[:, None, None, :]  # (B, 1, Tq, Tk)
+    expect = brute_means(w.numpy(), allowed.numpy())
+    got = cap.attention[0].stats.means()
+    assert seen and all(seen)  # entropy from the scores, not a logarithm per weight
+    for k, v in expect.items():
+        np.testing.assert_allclose(got[k], v, rtol=1e-6, atol=1e-6, err_msg=k)

@@ -178,3 +178,43 @@ def test_ablation_inside_a_capture_closed_out_of_order_restores_everything():
     block.__exit__(None, None, None)
     assert torch.backends.mha.get_fastpath_enabled() is True and torch._C._len_torch_function_stack() == 0
     assert len(cap.attention) == 2
+
+
+def test_captures_on_two_threads_keep_seeing_their_own_softmax_while_torch_mha_runs_in_stats_mode():
+    """One thread captures an nn.MultiheadAttention encoder with keep="stats" (its softmax is noted through a
+    wrapper of F.softmax for each call) while another captures a hand-written softmax block again and again:
+    the second never misses its layer, and F.softmax is torch's own again once both are done."""
+    import torch.nn.functional as F
+
+    original = F.softmax
+    torch.manual_seed(0)
+
+    class Hand(torch.nn.Module):  # hand-written attention: softmax over (B, H, Tq, Tk) scores
+        num_heads = 2
+
+        def forward(self, x):
+            q = x.view(2, 5, 2, 4).transpose(1, 2)  # (B, H, T, E)
+            return F.softmax(q @ q.transpose(-1, -2), dim=-1) @ q
+
+    hand = Hand()
+    counts, errors = [], []
+
+    def other():
+        try:
+            for _ in range(30):
+                with torch.no_grad(), attnscope.capture(hand, layers=[""], residual=False) as cap:
+                    hand(torch.randn(2, 5, 8))
+                counts.append(len(cap.attention))
+        except Exception as exc:  # noqa: BLE001  (reported below)
+            errors.append(exc)
+
+    model = encoder()
+    worker = threading.Thread(target=other)
+    worker.start()
+    for _ in range(30):
+        with torch.no_grad(), attnscope.capture(model, keep="stats") as cap:
+            model(X)
+        assert len(cap.attention) == 2
+    worker.join()
+    assert not errors and counts == [1] * 30
+    assert F.softmax is original

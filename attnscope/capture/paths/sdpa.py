@@ -69,11 +69,12 @@ def on_call(rec: Recorder, func, args, kwargs):
 
     def sums(hs: list[int]):
         """keep="stats" of a call whose mask is a bool one (or none): no map is formed (score_sums)."""
+        every = hs == list(range(hq))
         kh = [h // rep for h in hs] if k4.shape[1] > 1 else [0] * len(hs)
-        a = allowed if allowed is None or allowed.shape[1] == 1 else allowed[:, hs]
-        qq = q4[:, hs]  # (B, h, Tq, E)
-        kk = k4[:, kh].expand(b, len(hs), *k4.shape[-2:])  # (B, h, Tk, E)
-        return score_sums(qq, kk, a, p.get("scale"), offset)
+        a = allowed if allowed is None or allowed.shape[1] == 1 or every else allowed[:, hs]
+        qq = q4 if every else q4[:, hs]  # (B, h, Tq, E)
+        kk = k4 if kh == list(range(k4.shape[1])) else k4[:, kh]  # (B, h, Tk, E)  one key head per query head
+        return score_sums(qq, kk.expand(b, len(hs), *k4.shape[-2:]), a, p.get("scale"), offset)
 
     causal = is_causal or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset))
     rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute, builds=True,
