@@ -24,7 +24,7 @@ neighbour hits every case alike. Targets (from the project's issues):
 Floors, measured in the same run: what the peer's weights already cost (eager paths: the weights exist, so
 keeping them costs nothing beyond the peer); the plain forward plus recomputing 6 maps (fused path left
 bit-identical); the plain forward plus the statistics of 6 maps already in memory (``keep="stats"``; the
-entropy taken from the scores beside them where the path has scores: softmax and SDPA); on MHA, whose weights
+entropy taken from the scores beside them, as every path has them); on MHA, whose weights
 exist only on torch's math path, the peer plus those statistics.
 Memory: each mode runs in a fresh subprocess with glibc told to return every freed block of 128 KiB or more
 (``benchmarks.scale.EXACT_RSS``); the figure is the peak RSS of a captured forward (its results kept) minus the
@@ -150,7 +150,7 @@ def cases(kind: str, batch: int, seq: int) -> dict[str, object]:
         runs["stats, sdpa='weights'"] = lambda: forward(model, args, "stats", sdpa="weights")
         again = recompute_floor(batch, seq)
         runs["floor: plain + recompute 6 maps"] = lambda: (forward(model, args), again())
-    reduce = reduce_floor(batch, seq, scores=kind != "encoder")  # the MHA path hands out weights only
+    reduce = reduce_floor(batch, seq, scores=True)  # every path hands its scores to the statistics
     runs["floor: plain + stats of 6 maps in memory"] = lambda: (forward(model, args), reduce())
     if kind == "encoder":  # MHA forms the weights only on its math path: the peer's cost is part of the floor
         runs["floor: peer + stats of 6 maps in memory"] = lambda: (mha_peer(model, args), reduce())

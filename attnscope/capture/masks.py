@@ -19,7 +19,7 @@ import math
 import torch
 
 __all__ = ["FORBID_AT", "UNFIT", "added_mask_allowed", "agrees_with_scores", "allowed_from_scores", "causal_allowed",
-           "compact", "is_causal_mask", "sdpa_weights"]
+           "compact", "is_causal_mask", "only_forbids", "sdpa_weights"]
 
 #: A float mask value at or below this forbids the key (``-inf``, ``finfo.min``, ``-1e9``, ``-1e4`` do).
 FORBID_AT = -1.0e4
@@ -27,6 +27,16 @@ FORBID_AT = -1.0e4
 
 def _forbidden_from_float(mask: torch.Tensor) -> torch.Tensor:
     return mask <= FORBID_AT  # -inf <= x holds too
+
+
+def only_forbids(mask: torch.Tensor | None) -> bool:
+    """True when *mask* only allows or forbids keys: None, bool, or float of 0 and -inf (or at most half the
+    dtype's lowest value, as HF builds them: ``exp`` of such a score is exactly 0). A float mask with other values
+    adds a bias to the scores (ALiBi and the like)."""
+    if mask is None or mask.dtype == torch.bool:
+        return True
+    m = mask.detach()
+    return bool(((m == 0) | (m <= torch.finfo(m.dtype).min / 2)).all())
 
 
 @functools.lru_cache(maxsize=64)

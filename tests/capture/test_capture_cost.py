@@ -398,33 +398,80 @@ def test_stats_of_a_fused_call_form_no_map(monkeypatch):
 
 
 @pytest.mark.parametrize("batch_first", [True, False])
-def test_stats_of_torch_multihead_attention_take_its_scores_and_equal_brute_force(monkeypatch, batch_first):
-    """keep="stats" of nn.MultiheadAttention with a causal and a padding mask: the statistics reduce the scores
-    torch's math path gave its softmax, and equal float64 brute force on torch's own per-head weights
-    (``need_weights=True, average_attn_weights=False``) to 1e-6."""
+@pytest.mark.parametrize("mask_kind", ["bool", "float -inf"])
+@pytest.mark.parametrize("need_weights", [False, True])
+def test_stats_of_torch_multihead_attention_equal_brute_force_on_its_own_weights(monkeypatch, batch_first, mask_kind,
+                                                                                  need_weights):
+    """keep="stats" of nn.MultiheadAttention with a causal and a padding mask equals float64 brute force on torch's
+    own per-head weights (``need_weights=True, average_attn_weights=False``, asked outside capture) to 1e-6.
+    Called without weights, the call stays on torch's fused path and the statistics come from its queries and
+    keys (score_sums, no map); called with weights, from the scores torch's softmax took (no log per weight)."""
     torch.manual_seed(0)
     mha = nn.MultiheadAttention(16, 4, batch_first=batch_first).eval()
     x = torch.randn(3, 9, 16)  # (B, T, E)
     xin = x if batch_first else x.transpose(0, 1)
     causal = torch.ones(9, 9, dtype=torch.bool).triu(1)  # True = masked (torch's convention)
+    if mask_kind == "float -inf":  # as nn.Transformer.generate_square_subsequent_mask builds it
+        causal = torch.zeros(9, 9).masked_fill(causal, float("-inf"))
     pad = torch.zeros(3, 9, dtype=torch.bool)
     pad[1, 6:] = True  # item 1 ends at 6
-    with torch.no_grad():
-        _, w = mha(xin, xin, xin, attn_mask=causal, key_padding_mask=pad, need_weights=True,
-                   average_attn_weights=False)  # torch's own weights, outside capture
-    seen = []
-    real = attnscope.stats.head_sums
+    allowed = (~pad)[:, None, None, :] & torch.ones(9, 9, dtype=torch.bool).tril()  # (B, 1, Tq, Tk)
+    if mask_kind == "float -inf":
+        pad = torch.zeros(3, 9).masked_fill(pad, float("-inf"))  # the same type as the attention mask
+    was = torch.backends.mha.get_fastpath_enabled()
+    torch.backends.mha.set_fastpath_enabled(False)  # as under capture: the Python path, not the native kernel
+    try:
+        with torch.no_grad():
+            plain, w = mha(xin, xin, xin, attn_mask=causal, key_padding_mask=pad, need_weights=True,
+                           average_attn_weights=False)  # torch's own weights, outside capture
+            plain_fused, _ = mha(xin, xin, xin, attn_mask=causal, key_padding_mask=pad, need_weights=False)
+    finally:
+        torch.backends.mha.set_fastpath_enabled(was)
+    used = {"head_sums": [], "score_sums": 0}
+    recorder = importlib.import_module("attnscope.capture.recorder")
+    sdpa_path = importlib.import_module("attnscope.capture.paths.sdpa")
+    real_head, real_score = recorder.head_sums, sdpa_path.score_sums
 
-    def watch(weights, allowed, offset=0, scores=None):
-        seen.append(scores is not None)
-        return real(weights, allowed, offset, scores)
+    def watch_head(weights, allowed, offset=0, scores=None):
+        used["head_sums"].append(scores is not None)
+        return real_head(weights, allowed, offset, scores)
 
-    monkeypatch.setattr(importlib.import_module("attnscope.capture.recorder"), "head_sums", watch)
+    def watch_score(*args, **kw):
+        used["score_sums"] += 1
+        return real_score(*args, **kw)
+
+    monkeypatch.setattr(recorder, "head_sums", watch_head)
+    monkeypatch.setattr(sdpa_path, "score_sums", watch_score)
     with torch.no_grad(), attnscope.capture(mha, layers=[""], residual=False, keep="stats") as cap:
-        mha(xin, xin, xin, attn_mask=causal, key_padding_mask=pad, need_weights=False)
-    allowed = (~causal)[None, None] & (~pad)[:, None, None, :]  # (B, 1, Tq, Tk)
+        out, got_w = mha(xin, xin, xin, attn_mask=causal, key_padding_mask=pad, need_weights=need_weights,
+                         average_attn_weights=False)
+    if need_weights:
+        assert used == {"head_sums": [True], "score_sums": 0}  # the entropy from torch's own scores
+        torch.testing.assert_close(got_w, w, rtol=0, atol=0)  # the caller still gets torch's weights
+        torch.testing.assert_close(out, plain, rtol=0, atol=0)
+    else:
+        assert used == {"head_sums": [], "score_sums": 1} and got_w is None  # no map formed
+        torch.testing.assert_close(out, plain_fused, rtol=0, atol=0)  # the call ran as the caller made it
     expect = brute_means(w.numpy(), allowed.numpy())
     got = cap.attention[0].stats.means()
-    assert seen and all(seen)  # entropy from the scores, not a logarithm per weight
+    assert cap.attention[0].causal
+    for k, v in expect.items():
+        np.testing.assert_allclose(got[k], v, rtol=1e-6, atol=1e-6, err_msg=k)
+
+
+@pytest.mark.parametrize("mask_kind", ["bias", "zero attention"])
+def test_stats_of_torch_multihead_attention_with_a_score_bias_or_added_keys_take_the_math_path(mask_kind):
+    """A float mask that adds a bias to the scores (not only 0 / -inf) or keys torch adds itself
+    (``add_zero_attn``) are not for the fused statistics: they come from torch's own weights, to 1e-6."""
+    torch.manual_seed(0)
+    mha = nn.MultiheadAttention(16, 4, batch_first=True, add_zero_attn=mask_kind == "zero attention").eval()
+    x = torch.randn(2, 7, 16)
+    mask = -0.3 * (torch.arange(7)[:, None] - torch.arange(7)[None]).abs().float() if mask_kind == "bias" else None
+    with torch.no_grad():
+        _, w = mha(x, x, x, attn_mask=mask, need_weights=True, average_attn_weights=False)  # torch's weights
+    with torch.no_grad(), attnscope.capture(mha, layers=[""], residual=False, keep="stats") as cap:
+        mha(x, x, x, attn_mask=mask, need_weights=False)
+    expect = brute_means(w.numpy(), None)
+    got = cap.attention[0].stats.means()
     for k, v in expect.items():
         np.testing.assert_allclose(got[k], v, rtol=1e-6, atol=1e-6, err_msg=k)

@@ -180,41 +180,43 @@ def test_ablation_inside_a_capture_closed_out_of_order_restores_everything():
     assert len(cap.attention) == 2
 
 
-def test_captures_on_two_threads_keep_seeing_their_own_softmax_while_torch_mha_runs_in_stats_mode():
-    """One thread captures an nn.MultiheadAttention encoder with keep="stats" (its softmax is noted through a
-    wrapper of F.softmax for each call) while another captures a hand-written softmax block again and again:
-    the second never misses its layer, and F.softmax is torch's own again once both are done."""
+def test_captures_on_two_threads_keep_seeing_their_own_attention_while_torch_mha_runs_in_stats_mode():
+    """One thread captures nn.MultiheadAttention with keep="stats" (called with weights: F.softmax is noted
+    through a wrapper for the call; without: F.scaled_dot_product_attention is) while another captures
+    hand-written softmax and SDPA blocks again and again: the second never misses a layer, and both functions
+    are torch's own again once both are done."""
     import torch.nn.functional as F
 
-    original = F.softmax
+    softmax, sdpa = F.softmax, F.scaled_dot_product_attention
     torch.manual_seed(0)
 
-    class Hand(torch.nn.Module):  # hand-written attention: softmax over (B, H, Tq, Tk) scores
+    class Hand(torch.nn.Module):  # hand-written attention over (B, H, T, E), two ways
         num_heads = 2
 
         def forward(self, x):
             q = x.view(2, 5, 2, 4).transpose(1, 2)  # (B, H, T, E)
-            return F.softmax(q @ q.transpose(-1, -2), dim=-1) @ q
+            return F.softmax(q @ q.transpose(-1, -2), dim=-1) @ q + F.scaled_dot_product_attention(q, q, q)
 
     hand = Hand()
     counts, errors = [], []
 
     def other():
         try:
-            for _ in range(30):
+            for _ in range(40):
                 with torch.no_grad(), attnscope.capture(hand, layers=[""], residual=False) as cap:
                     hand(torch.randn(2, 5, 8))
-                counts.append(len(cap.attention))
+                counts.append(sorted(r.source for r in cap.attention))
         except Exception as exc:  # noqa: BLE001  (reported below)
             errors.append(exc)
 
-    model = encoder()
+    mha = torch.nn.MultiheadAttention(8, 2, batch_first=True).eval()
+    x = torch.randn(2, 5, 8)
     worker = threading.Thread(target=other)
     worker.start()
-    for _ in range(30):
-        with torch.no_grad(), attnscope.capture(model, keep="stats") as cap:
-            model(X)
-        assert len(cap.attention) == 2
+    for i in range(40):
+        with torch.no_grad(), attnscope.capture(mha, layers=[""], residual=False, keep="stats") as cap:
+            mha(x, x, x, need_weights=bool(i % 2))
+        assert len(cap.attention) == 1 and cap.attention[0].stats is not None
     worker.join()
-    assert not errors and counts == [1] * 30
-    assert F.softmax is original
+    assert not errors and counts == [["sdpa", "softmax"]] * 40
+    assert F.softmax is softmax and F.scaled_dot_product_attention is sdpa

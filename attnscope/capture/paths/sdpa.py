@@ -8,7 +8,7 @@ Grouped-query decode steps packed as ``(B, H_kv, n_rep, E)`` queries (one query 
 key/value heads, as HF transformers does for a single token with a mask) are unpacked to
 ``(B, H_q, 1, E)`` when the owning module declares ``num_key_value_groups`` and its head count.
 
-With ``keep="stats"`` and a bool mask (or none) no map is formed: :func:`attnscope.stats.score_sums` reduces
+With ``keep="stats"`` and a mask that only allows or forbids keys (or none) no map is formed: :func:`attnscope.stats.score_sums` reduces
 the scores piece by piece, skipping the blocks of keys the mask forbids to every query of a block.
 
 With ``capture(..., sdpa="weights")`` the call is not run at all: capture builds the weights of every head and
@@ -67,20 +67,26 @@ def on_call(rec: Recorder, func, args, kwargs):
         return masks.sdpa_weights(q4[sl][:, hs], k4[sl][:, kh], m, is_causal, p.get("scale"),
                                   with_scores=with_scores)
 
-    def sums(hs: list[int]):
-        """keep="stats" of a call whose mask is a bool one (or none): no map is formed (score_sums)."""
-        every = hs == list(range(hq))
-        kh = [h // rep for h in hs] if k4.shape[1] > 1 else [0] * len(hs)
-        a = allowed if allowed is None or allowed.shape[1] == 1 or every else allowed[:, hs]
-        qq = q4 if every else q4[:, hs]  # (B, h, Tq, E)
-        kk = k4 if kh == list(range(k4.shape[1])) else k4[:, kh]  # (B, h, Tk, E)  one key head per query head
-        return score_sums(qq, kk.expand(b, len(hs), *k4.shape[-2:]), a, p.get("scale"), offset)
-
     causal = is_causal or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset))
     rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute, builds=True,
                scored=lambda sl, hs: compute(sl, hs, with_scores=True),
-               sums=sums if mask4 is None or mask4.dtype == torch.bool else None)
+               sums=(lambda hs: fused_sums(q4, k4, allowed, hs, rep, p.get("scale"), offset))
+               if masks.only_forbids(mask4) else None)
     return out
+
+
+def fused_sums(q4: torch.Tensor, k4: torch.Tensor, allowed: torch.Tensor | None, hs: list[int], rep: int,
+               scale: float | None, offset: int):
+    """keep="stats" of a fused call whose mask only allows or forbids keys: statistics of heads *hs* with no map
+    formed (:func:`~attnscope.stats.score_sums`). *q4* ``(B, Hq, Tq, E)``, *k4* ``(B, Hkv, Tk, E)`` with ``Hq =
+    rep · Hkv`` (or one key head), *allowed* compact ``(B or 1, Hq or 1, Tq, Tk)`` or None."""
+    b, hq = q4.shape[:2]
+    every = hs == list(range(hq))
+    kh = [h // rep for h in hs] if k4.shape[1] > 1 else [0] * len(hs)
+    a = allowed if allowed is None or allowed.shape[1] == 1 or every else allowed[:, hs]
+    qq = q4 if every else q4[:, hs]  # (B, h, Tq, E)
+    kk = k4 if kh == list(range(k4.shape[1])) else k4[:, kh]  # (B, h, Tk, E)  one key head per query head
+    return score_sums(qq, kk.expand(b, len(hs), *k4.shape[-2:]), a, scale, offset)
 
 
 def _packed_groups(module, q4, k4) -> int:

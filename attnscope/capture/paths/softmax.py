@@ -17,72 +17,16 @@ mask), else they are read off the scores (at most :data:`~attnscope.capture.mask
 
 from __future__ import annotations
 
-import threading
-
 import torch
 import torch.nn.functional as F
 
 from attnscope.capture import masks, rules
+from attnscope.capture.notes import noting
 from attnscope.capture.recorder import Recorder, take
 
 SOURCE = "softmax"
-
-
-class SoftmaxNotes:
-    """Keeps the input and output of the softmax torch's math path calls (``F.softmax``, looked up by name in
-    :mod:`torch.nn.functional`), per thread; every call runs unchanged.
-
-    A torch function mode cannot see it: torch leaves the mode that routed ``multi_head_attention_forward`` here
-    for as long as that call runs. So for the call's duration ``F.softmax`` is a thin wrapper that calls the
-    original and notes its tensors; the wrapper goes in with the first thread to enter and out with the last. A
-    capture running in another thread meanwhile still sees its own softmax calls: the wrapper is one of
-    :data:`FUNCS`.
-    """
-
-    _lock = threading.Lock()
-    _users = 0
-    _original = None
-    _local = threading.local()
-
-    def __enter__(self) -> "SoftmaxNotes":
-        cls = type(self)
-        with cls._lock:
-            if cls._users == 0:
-                cls._original = F.softmax
-                F.softmax = noting_softmax
-            cls._users += 1
-        self.calls: list[tuple[torch.Tensor, torch.Tensor]] = []
-        self._outer = getattr(cls._local, "calls", None)
-        cls._local.calls = self.calls
-        return self
-
-    def __exit__(self, *exc) -> None:
-        cls = type(self)
-        cls._local.calls = self._outer
-        with cls._lock:
-            cls._users -= 1
-            if cls._users == 0:
-                F.softmax = cls._original
-
-    def scores_of(self, weights: torch.Tensor) -> torch.Tensor | None:
-        """The ``(B, H, Tq, Tk)`` scores whose softmax *weights* are (the very tensor), else None."""
-        for x, out in self.calls:
-            if (isinstance(x, torch.Tensor) and x.dtype == out.dtype == torch.float32 and out.numel() == weights.numel()
-                    and out.data_ptr() == weights.data_ptr() and x.numel() == weights.numel()):
-                return x.detach().reshape(weights.shape if weights.dim() == 4 else (1, *weights.shape))
-        return None
-
-
-def noting_softmax(input, dim=None, _stacklevel=3, dtype=None):  # noqa: A002  (F.softmax's own signature)
-    """``F.softmax`` while a :class:`SoftmaxNotes` is open: the original, and a note of its tensors in this thread."""
-    out = SoftmaxNotes._original(input, dim, _stacklevel, dtype)
-    calls = getattr(SoftmaxNotes._local, "calls", None)
-    if calls is not None and isinstance(out, torch.Tensor):
-        calls.append((input, out))
-    return out
-
-
-FUNCS = (F.softmax, torch.softmax, torch.Tensor.softmax, torch.special.softmax, noting_softmax)
+# noting("softmax"): F.softmax while nn.MultiheadAttention's scores are noted (attnscope.capture.notes)
+FUNCS = (F.softmax, torch.softmax, torch.Tensor.softmax, torch.special.softmax, noting("softmax"))
 
 
 def on_call(rec: Recorder, func, args, kwargs):
