@@ -52,6 +52,10 @@ class HeadSums:
     leak_mass: np.ndarray
     nonfinite: np.ndarray
 
+    def take(self, heads: list[int]) -> HeadSums:
+        """The sums of the chosen *heads* (positions along the head axis), in that order."""
+        return HeadSums(**{f.name: getattr(self, f.name)[list(heads)] for f in fields(self)})
+
     @classmethod
     def zeros(cls, heads: int) -> HeadSums:
         """Empty sums for *heads* heads."""

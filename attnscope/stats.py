@@ -174,7 +174,7 @@ SCORE_PIECE_BYTES = 1024**2
 
 
 def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = None, scale: float | None = None,
-               query_offset: int = 0) -> HeadSums:
+               query_offset: int = 0, v: torch.Tensor | None = None):
     """Per-head sums of the weights ``softmax(Q Kᵀ · scale)`` over the *allowed* keys, without forming the map.
 
     What :func:`head_sums` gives for the weights :func:`attnscope.capture.masks.sdpa_weights` would build with a
@@ -183,7 +183,7 @@ def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = 
 
     The queries are taken in blocks of rows (:data:`ROW_BLOCK_MIN`); each block computes only the keys some row
     of it may see, so a causal or sliding-window mask skips most products it forbids. Each piece (at most
-    :data:`PIECE_BYTES` of scores) is reduced while it is in cache, as :func:`head_sums` reduces weights with
+    :data:`SCORE_PIECE_BYTES` of scores) is reduced while it is in cache, as :func:`head_sums` reduces weights with
     their scores (the entropy with one logarithm per row). Forbidden keys get exactly zero weight (``exp(-inf)``),
     so the leak mass is 0.
 
@@ -193,6 +193,12 @@ def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = 
         allowed: bool, broadcastable to ``(B, H, Tq, Tk)``, True where a query may see a key; None: every key.
         scale: the score scale (default ``1/sqrt(E)``, as ``scaled_dot_product_attention``).
         query_offset: absolute position of query 0 on the key axis, for ``mean_distance``.
+        v: ``(B, H, Tk, Ev)`` values, one value head per query head: then the attention output ``weights @ V``
+            is built from the same pieces (in *v*'s dtype; rows with no allowed key are 0, as the fused kernels
+            give) and ``(sums, output)`` is returned, ``output`` ``(B, H, Tq, Ev)``.
+
+    Returns:
+        The :class:`~attnscope.records.HeadSums`, or ``(sums, output)`` when *v* is given.
     """
     q, k = q.detach().float(), k.detach().float()
     b, h, tq, e_dim = q.shape
@@ -219,6 +225,8 @@ def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = 
     dist = _distance_matrix(tq, tk, int(query_offset))  # (Tq, Tk)
     keys = ("top", "entropy", "max", "distance", "sink")
     rows = {key: torch.zeros(n, tq) for key in keys}  # per row; rows of blocks that see no key stay 0
+    v3 = None if v is None else v.detach().reshape(n, tk, v.shape[-1])  # (B*H, Tk, Ev)
+    out3 = None if v is None else torch.zeros(n, tq, v.shape[-1], dtype=v.dtype)  # rows no key reaches stay 0
     rb = min(tq, max(ROW_BLOCK_MIN, -(-tq // 8)))
     for r0 in range(0, tq, rb):
         r1 = min(tq, r0 + rb)
@@ -248,6 +256,8 @@ def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = 
             torch.sum(torch.mul(w, dist[r0:r1, k0:k1], out=sc), dim=-1, out=block["distance"][s0:s1])
             pick = (first[s0:s1, r0:r1] - k0).clamp_(0, k1 - k0 - 1).unsqueeze(-1)  # (s, r, 1)
             block["sink"][s0:s1] = w.gather(-1, pick).squeeze(-1)
+            if v3 is not None:
+                out3[s0:s1, r0:r1] = torch.bmm(w.to(v3.dtype), v3[s0:s1, k0:k1])  # (s, r, Ev)
         for key in keys:
             rows[key][:, r0:r1] = block[key]
     rows = {key: v.view(b, h, tq) for key, v in rows.items()}
@@ -260,4 +270,8 @@ def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = 
     top = rows["max"]
     rows["entropy"] = -rows["entropy"] - torch.where(top > 0, top.log() * rows["sum"], 0.0)  # - ln max(w) * Σ w
     rows["leak"] = torch.zeros(b, h, tq)
-    return _totals(rows, n_allowed)
+    if v3 is None:
+        return _totals(rows, n_allowed)
+    out = out3.view(b, h, tq, -1)
+    out.masked_fill_(empty.unsqueeze(-1), 0.0)  # a row with no allowed key: NaN weights, the kernels give 0
+    return _totals(rows, n_allowed), out

@@ -136,26 +136,40 @@ def test_sdpa_weights_mode_output_differs_from_the_plain_model_by_float_rounding
         np.testing.assert_allclose(b.weights, a.weights, atol=1e-5)
 
 
-def test_sdpa_weights_mode_with_gqa_and_a_padding_mask_against_math():
+@pytest.mark.parametrize("keep", ["maps", "stats"])
+def test_sdpa_weights_mode_with_gqa_and_a_padding_mask_against_math(keep, monkeypatch):
+    """Output of sdpa="weights" against an independent softmax(QKᵀ/√d + mask) @ V and torch's own kernel; with
+    keep="stats" output and statistics come from the same pieces (small pieces and row blocks forced here), the
+    statistics equal float64 brute force on the independent weights, and a row with no allowed key gives 0."""
+    monkeypatch.setattr(attnscope.stats, "SCORE_PIECE_BYTES", 256)
+    monkeypatch.setattr(attnscope.stats, "ROW_BLOCK_MIN", 2)
     torch.manual_seed(0)
     q, k, v = torch.randn(2, 4, 5, 8), torch.randn(2, 2, 7, 8), torch.randn(2, 2, 7, 6)
     mask = torch.ones(2, 1, 5, 7, dtype=torch.bool)
     mask[1, :, :, 5:] = False
+    mask[0, :, 3] = False  # query 3 of item 0 sees no key
 
     class Block(nn.Module):
         def forward(self, q, k, v):
             return F.scaled_dot_product_attention(q, k, v, attn_mask=mask, enable_gqa=True)
 
     block = Block()
-    with attnscope.capture(block, sdpa="weights", layers=[""], residual=False) as cap:
+    with attnscope.capture(block, sdpa="weights", layers=[""], residual=False, keep=keep) as cap:
         got = block(q, k, v)
     kk, vv = k.repeat_interleave(2, 1), v.repeat_interleave(2, 1)
     scores = (q @ kk.transpose(-2, -1) / math.sqrt(8)).masked_fill(~mask, float("-inf"))  # independent softmax
-    w = scores.softmax(-1)
+    w = scores.softmax(-1).nan_to_num(0.0)  # the row with no key: zeros, as torch's fused kernels give
     torch.testing.assert_close(got, w @ vv, rtol=1e-5, atol=1e-6)
     torch.testing.assert_close(got, F.scaled_dot_product_attention(q, k, v, attn_mask=mask, enable_gqa=True),
                                rtol=1e-5, atol=1e-6)
-    np.testing.assert_allclose(cap.attention[0].weights, w.numpy(), atol=1e-6)
+    assert torch.equal(got[0, :, 3], torch.zeros(4, 6))
+    if keep == "maps":
+        np.testing.assert_allclose(cap.attention[0].weights, w.numpy(), atol=1e-6)
+    else:
+        assert cap.attention[0].weights is None
+        expect = brute_means(w.numpy(), mask.numpy(), offset=7 - 5)  # 5 queries are the last of 7 positions
+        for key, val in expect.items():
+            np.testing.assert_allclose(cap.attention[0].stats.means()[key], val, rtol=1e-6, atol=1e-6, err_msg=key)
 
 
 def test_sdpa_weights_mode_leaves_calls_that_need_gradients_untouched():
@@ -371,8 +385,10 @@ def test_statistics_from_scores_without_a_map_equal_brute_force(monkeypatch, cas
     assert got["leak_mass"].tolist() == [0.0] * h
 
 
-def test_stats_of_a_fused_call_form_no_map(monkeypatch):
-    """keep="stats" of an SDPA call with a bool mask reduces scores piece by piece; the whole map never exists."""
+@pytest.mark.parametrize("sdpa", ["beside", "weights"])
+def test_stats_of_a_fused_call_form_no_map(monkeypatch, sdpa):
+    """keep="stats" of an SDPA call with a bool mask reduces scores piece by piece; the whole map never exists
+    (with sdpa="weights" the output is built from the same pieces)."""
     largest = []
     real_bmm = torch.bmm
 
@@ -389,8 +405,9 @@ def test_stats_of_a_fused_call_form_no_map(monkeypatch):
             return F.scaled_dot_product_attention(q, k, v, is_causal=True)
 
     block = Block()
-    with attnscope.capture(block, layers=[""], residual=False, keep="stats") as cap:
-        block(q, k, v)
+    with attnscope.capture(block, layers=[""], residual=False, keep="stats", sdpa=sdpa) as cap:
+        got = block(q, k, v)
+    torch.testing.assert_close(got, F.scaled_dot_product_attention(q, k, v, is_causal=True), rtol=1e-5, atol=1e-6)
     assert cap.attention[0].stats is not None and largest
     whole = 2 * 4 * 256 * 256
     assert max(largest) < whole  # piece by piece

@@ -13,7 +13,8 @@ the scores piece by piece, skipping the blocks of keys the mask forbids to every
 
 With ``capture(..., sdpa="weights")`` the call is not run at all: capture builds the weights of every head and
 returns ``weights @ V`` as the call's output (equal to the kernel's up to float rounding), so attention is
-computed once.
+computed once. With ``keep="stats"`` as well (and a mask that only allows or forbids keys) the output and the
+statistics come from the same pieces of scores (:func:`attnscope.stats.score_sums` with ``v``): no map at all.
 """
 
 from __future__ import annotations
@@ -122,6 +123,21 @@ def _from_weights(rec: Recorder, frame, p: dict) -> torch.Tensor:
     b, hq, tq, _ = q4.shape  # (B, Hq, Tq, E)
     tk = k4.shape[-2]
     gqa = bool(p.get("enable_gqa", False))
+    kind = frame.kind()
+    offset = 0 if (is_causal or kind == "cross") else max(tk - tq, 0)
+    allowed = masks.compact(masks.sdpa_allowed(mask4, is_causal, tq, tk), (b, hq, tq, tk))
+    heads = rec.kept_heads(hq, frame.target().name)
+    causal = is_causal or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset))
+    if rec.keep == "stats" and masks.only_forbids(mask4):
+        # statistics and output from the same pieces of scores: no map, attention computed once
+        kk = k4.repeat_interleave(hq // k4.shape[1], dim=1) if k4.shape[1] != hq else k4  # (B, Hq, Tk, E)
+        vv = v4.repeat_interleave(hq // v4.shape[1], dim=1) if v4.shape[1] != hq else v4  # (B, Hq, Tk, Ev)
+        sums, out = score_sums(q4, kk.expand(b, hq, tk, k4.shape[-1]), allowed, p.get("scale"), offset,
+                               v=vv.expand(b, hq, tk, v4.shape[-1]))
+        rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset,
+                   lambda sl, hs: masks.sdpa_weights(q4, kk, mask4, is_causal, p.get("scale"))[sl][:, hs],
+                   sums=lambda hs: sums.take(hs))
+        return out.reshape(*q.shape[:-1], v.shape[-1])
     scores = None  # keep="stats" takes the entropy from the masked scores (no logarithm per weight)
     if rec.keep == "stats":
         w, scores = masks.sdpa_weights(q4, k4, mask4, is_causal, p.get("scale"), enable_gqa=gqa, with_scores=True)
@@ -131,11 +147,6 @@ def _from_weights(rec: Recorder, frame, p: dict) -> torch.Tensor:
     if gqa and v4.shape[1] != hq:
         vv = v4.repeat_interleave(hq // v4.shape[1], dim=1)  # (B, Hq, Tk, Ev)
     out = torch.matmul(w.to(v.dtype), vv)  # (B, Hq, Tq, Ev)
-    kind = frame.kind()
-    offset = 0 if (is_causal or kind == "cross") else max(tk - tq, 0)
-    allowed = masks.compact(masks.sdpa_allowed(mask4, is_causal, tq, tk), (b, hq, tq, tk))
-    heads = rec.kept_heads(hq, frame.target().name)
-    causal = is_causal or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset))
     rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset,
                lambda sl, hs: take(w, sl, hs), scores=scores)  # capture's own tensor: kept without a copy
     return out.reshape(*q.shape[:-1], v.shape[-1])
