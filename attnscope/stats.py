@@ -228,6 +228,7 @@ def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = 
     v3 = None if v is None else v.detach().reshape(n, tk, v.shape[-1])  # (B*H, Tk, Ev)
     out3 = None if v is None else torch.zeros(n, tq, v.shape[-1], dtype=v.dtype)  # rows no key reaches stay 0
     rb = min(tq, max(ROW_BLOCK_MIN, -(-tq // 8)))
+    spans = []  # (r0, r1, k0, k1) of the row blocks some row of which sees a key
     for r0 in range(0, tq, rb):
         r1 = min(tq, r0 + rb)
         k0, k1 = 0, tk
@@ -236,30 +237,38 @@ def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = 
             if cols.numel() == 0:
                 continue  # no row of the block sees a key: every weight is 0
             k0, k1 = int(cols[0]), int(cols[-1]) + 1
-        per = max(1, SCORE_PIECE_BYTES // ((r1 - r0) * (k1 - k0) * 4))
-        buf = torch.empty(min(per, n), r1 - r0, k1 - k0)  # (s, r, K)  scores, then products
-        wbuf = torch.empty_like(buf)  # (s, r, K)  the piece's weights
-        block = {key: torch.empty(n, r1 - r0) for key in keys}
+        spans.append((r0, r1, k0, k1))
+    # one pair of scratch buffers for every piece of the call: (scores, then products) and the piece's weights
+    room = max([min(n, max(1, SCORE_PIECE_BYTES // ((r1 - r0) * (k1 - k0) * 4))) * (r1 - r0) * (k1 - k0)
+                for r0, r1, k0, k1 in spans] or [0])
+    scratch, wscratch = torch.empty(room), torch.empty(room)
+    for r0, r1, k0, k1 in spans:
+        r, kn = r1 - r0, k1 - k0
+        per = max(1, SCORE_PIECE_BYTES // (r * kn * 4))
+        qb, kb = q3[:, r0:r1], k3[:, k0:k1].transpose(1, 2)  # (n, r, E), (n, E, K)
+        bb, db = None if bias is None else bias[r0:r1, k0:k1], dist[r0:r1, k0:k1]  # (r, K)
+        pick = (first[:, r0:r1] - k0).clamp_(0, kn - 1).unsqueeze(-1)  # (n, r, 1)  the sink key in the block
+        block = {key: torch.empty(n, r, 1) for key in keys}  # (n, r, 1) per row of the block
         for s0 in range(0, n, per):
             s1 = min(n, s0 + per)
-            sc = torch.bmm(q3[s0:s1, r0:r1], k3[s0:s1, k0:k1].transpose(1, 2), out=buf[:s1 - s0])  # (s, r, K)
-            if bias is not None:
-                sc.add_(bias[r0:r1, k0:k1])
+            sc = torch.bmm(qb[s0:s1], kb[s0:s1], out=scratch[:(s1 - s0) * r * kn].view(s1 - s0, r, kn))  # (s, r, K)
+            if bb is not None:
+                sc.add_(bb)
             elif a is not None:
                 idx = torch.arange(s0, s1)
                 ap = a[idx // h if a.shape[0] > 1 else 0, idx % h if a.shape[1] > 1 else 0, r0:r1, k0:k1]
                 sc.masked_fill_(~ap.expand_as(sc), float("-inf"))  # (s, r, K)
-            w = torch.softmax(sc, dim=-1, out=wbuf[:s1 - s0])  # (s, r, K)  (softmax's exponential is the fast one)
-            m = torch.amax(sc, dim=-1, keepdim=True, out=block["top"][s0:s1].unsqueeze(-1))  # (s, r, 1)
-            torch.nansum(sc.sub_(m).mul_(w), dim=-1, out=block["entropy"][s0:s1])  # Σ w (s - m); -inf · 0 skipped
-            torch.amax(w, dim=-1, out=block["max"][s0:s1])
-            torch.sum(torch.mul(w, dist[r0:r1, k0:k1], out=sc), dim=-1, out=block["distance"][s0:s1])
-            pick = (first[s0:s1, r0:r1] - k0).clamp_(0, k1 - k0 - 1).unsqueeze(-1)  # (s, r, 1)
-            block["sink"][s0:s1] = w.gather(-1, pick).squeeze(-1)
+            # (softmax's exponential is the fast one)
+            w = torch.softmax(sc, dim=-1, out=wscratch[:sc.numel()].view(sc.shape))  # (s, r, K)
+            m = torch.amax(sc, dim=-1, keepdim=True, out=block["top"][s0:s1])  # (s, r, 1)
+            torch.nansum(sc.sub_(m).mul_(w), dim=-1, keepdim=True, out=block["entropy"][s0:s1])  # Σ w (s - m)
+            torch.amax(w, dim=-1, keepdim=True, out=block["max"][s0:s1])  # (-inf · 0 skipped above)
+            torch.sum(torch.mul(w, db, out=sc), dim=-1, keepdim=True, out=block["distance"][s0:s1])
+            torch.gather(w, -1, pick[s0:s1], out=block["sink"][s0:s1])
             if v3 is not None:
                 out3[s0:s1, r0:r1] = torch.bmm(w.to(v3.dtype), v3[s0:s1, k0:k1])  # (s, r, Ev)
         for key in keys:
-            rows[key][:, r0:r1] = block[key]
+            rows[key][:, r0:r1] = block[key].squeeze(-1)
     rows = {key: v.view(b, h, tq) for key, v in rows.items()}
     # the weights of a row with a finite top score sum to 1 (softmax); a NaN or +inf score makes them NaN
     top = rows.pop("top")
