@@ -24,7 +24,7 @@ _lock = threading.Lock()
 _users: dict[str, int] = {}
 _originals: dict[str, Any] = {}
 _wrappers: dict[str, Any] = {}
-_local = threading.local()  # per thread: {name: the open notes' list of calls}
+_local = threading.local()  # per thread: open = {name: (the open notes' list of calls, replace or None)}
 
 
 def noting(name: str):
@@ -35,10 +35,12 @@ def noting(name: str):
             _originals.setdefault(name, original)
 
             def wrapper(*args, **kwargs):
-                out = _originals[name](*args, **kwargs)
-                calls = getattr(_local, "calls", {}).get(name)
-                if calls is not None:
-                    calls.append((args, kwargs, out))
+                entry = getattr(_local, "open", {}).get(name)  # (calls, replace) of this thread's open notes
+                if entry is None:
+                    return _originals[name](*args, **kwargs)
+                calls, replace = entry
+                out = (replace or _originals[name])(*args, **kwargs)
+                calls.append((args, kwargs, out))
                 return out
 
             wrapper.__name__ = wrapper.__qualname__ = f"noting_{name}"
@@ -48,12 +50,17 @@ def noting(name: str):
 
 
 class CallNotes:
-    """While open, ``calls`` lists ``(args, kwargs, result)`` of every ``F.<name>`` call this thread makes."""
+    """While open, ``calls`` lists ``(args, kwargs, result)`` of every ``F.<name>`` call this thread makes.
 
-    def __init__(self, name: str) -> None:
+    With *replace*, this thread's calls run ``replace(*args, **kwargs)`` instead of the original (capture computing
+    an attention call itself).
+    """
+
+    def __init__(self, name: str, replace=None) -> None:
         self.name = name
+        self.replace = replace
         self.calls: list[tuple[tuple, dict, Any]] = []
-        self._outer: list | None = None
+        self._outer: tuple | None = None
 
     def __enter__(self) -> "CallNotes":
         wrapper = noting(self.name)
@@ -64,14 +71,17 @@ class CallNotes:
                     _originals[self.name] = current
                 setattr(F, self.name, wrapper)
             _users[self.name] = _users.get(self.name, 0) + 1
-        if not hasattr(_local, "calls"):
-            _local.calls = {}
-        self._outer = _local.calls.get(self.name)
-        _local.calls[self.name] = self.calls
+        if not hasattr(_local, "open"):
+            _local.open = {}
+        self._outer = _local.open.get(self.name)
+        _local.open[self.name] = (self.calls, self.replace)
         return self
 
     def __exit__(self, *exc) -> None:
-        _local.calls[self.name] = self._outer
+        if self._outer is None:
+            _local.open.pop(self.name, None)
+        else:
+            _local.open[self.name] = self._outer
         with _lock:
             _users[self.name] -= 1
             if _users[self.name] == 0:

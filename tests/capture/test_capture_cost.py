@@ -416,13 +416,16 @@ def test_stats_of_a_fused_call_form_no_map(monkeypatch, sdpa):
 
 @pytest.mark.parametrize("batch_first", [True, False])
 @pytest.mark.parametrize("mask_kind", ["bool", "float -inf"])
-@pytest.mark.parametrize("need_weights", [False, True])
+@pytest.mark.parametrize("call", ["no weights", "no weights, with grad", "weights"])
 def test_stats_of_torch_multihead_attention_equal_brute_force_on_its_own_weights(monkeypatch, batch_first, mask_kind,
-                                                                                  need_weights):
+                                                                                  call):
     """keep="stats" of nn.MultiheadAttention with a causal and a padding mask equals float64 brute force on torch's
     own per-head weights (``need_weights=True, average_attn_weights=False``, asked outside capture) to 1e-6.
-    Called without weights, the call stays on torch's fused path and the statistics come from its queries and
-    keys (score_sums, no map); called with weights, from the scores torch's softmax took (no log per weight)."""
+
+    Called without weights and no gradient needed, capture computes the inner attention call itself: output and
+    statistics from the same pieces (score_sums with values, no map), the output equal to torch's fused call to
+    float rounding. With a gradient needed the call runs as the caller made it (bit-identical, graph intact) and
+    the statistics come from its queries and keys. Called with weights, from the scores torch's softmax took."""
     torch.manual_seed(0)
     mha = nn.MultiheadAttention(16, 4, batch_first=batch_first).eval()
     x = torch.randn(3, 9, 16)  # (B, T, E)
@@ -446,8 +449,8 @@ def test_stats_of_torch_multihead_attention_equal_brute_force_on_its_own_weights
         torch.backends.mha.set_fastpath_enabled(was)
     used = {"head_sums": [], "score_sums": 0}
     recorder = importlib.import_module("attnscope.capture.recorder")
-    sdpa_path = importlib.import_module("attnscope.capture.paths.sdpa")
-    real_head, real_score = recorder.head_sums, sdpa_path.score_sums
+    paths = [importlib.import_module(f"attnscope.capture.paths.{m}") for m in ("sdpa", "mha")]
+    real_head, real_score = recorder.head_sums, attnscope.stats.score_sums
 
     def watch_head(weights, allowed, offset=0, scores=None):
         used["head_sums"].append(scores is not None)
@@ -458,17 +461,25 @@ def test_stats_of_torch_multihead_attention_equal_brute_force_on_its_own_weights
         return real_score(*args, **kw)
 
     monkeypatch.setattr(recorder, "head_sums", watch_head)
-    monkeypatch.setattr(sdpa_path, "score_sums", watch_score)
-    with torch.no_grad(), attnscope.capture(mha, layers=[""], residual=False, keep="stats") as cap:
-        out, got_w = mha(xin, xin, xin, attn_mask=causal, key_padding_mask=pad, need_weights=need_weights,
+    for path in paths:
+        monkeypatch.setattr(path, "score_sums", watch_score)
+    grad = call == "no weights, with grad"
+    inp = xin.clone().requires_grad_(True) if grad else xin
+    with torch.set_grad_enabled(grad), attnscope.capture(mha, layers=[""], residual=False, keep="stats") as cap:
+        out, got_w = mha(inp, inp, inp, attn_mask=causal, key_padding_mask=pad, need_weights=call == "weights",
                          average_attn_weights=False)
-    if need_weights:
+    if call == "weights":
         assert used == {"head_sums": [True], "score_sums": 0}  # the entropy from torch's own scores
         torch.testing.assert_close(got_w, w, rtol=0, atol=0)  # the caller still gets torch's weights
         torch.testing.assert_close(out, plain, rtol=0, atol=0)
-    else:
+    elif grad:
         assert used == {"head_sums": [], "score_sums": 1} and got_w is None  # no map formed
-        torch.testing.assert_close(out, plain_fused, rtol=0, atol=0)  # the call ran as the caller made it
+        torch.testing.assert_close(out.detach(), plain_fused, rtol=0, atol=0)  # the call ran as the caller made it
+        out.sum().backward()
+        assert inp.grad is not None and inp.grad.abs().sum() > 0  # the graph is intact
+    else:
+        assert used == {"head_sums": [], "score_sums": 1} and got_w is None  # no map, computed once
+        torch.testing.assert_close(out, plain_fused, rtol=1e-5, atol=1e-6)  # torch's fused kernel, to rounding
     expect = brute_means(w.numpy(), allowed.numpy())
     got = cap.attention[0].stats.means()
     assert cap.attention[0].causal

@@ -4,18 +4,27 @@ With ``need_weights=True, average_attn_weights=False`` torch takes its math path
 per-head weights it multiplied V by. With attention dropout in training the call runs as it was, and a
 dropout-free twin call gives the (pre-dropout) weights.
 
-With ``keep="stats"`` a call that asks for no weights stays on torch's fused path, as the caller made it, when
-its masks only allow or forbid keys: the statistics come from the queries and keys its
-``scaled_dot_product_attention`` took (noted by :class:`~attnscope.capture.notes.CallNotes`), with no map formed
-(:func:`attnscope.stats.score_sums`). The math path's two ``(B·H, Tq, Tk)`` temporaries per layer are what
-made statistics cost more than maps: freed at once, glibc gives their pages back to the system and the next
-layer faults them in again. Other calls (a score bias, ``bias_k``, zero attention, another torch function mode
-below capture's) take the math path and hand capture the scores its softmax took, so the entropy needs no
-logarithm per weight (:func:`attnscope.stats.head_sums`).
+With ``keep="stats"`` a call that asks for no weights, with masks that only allow or forbid keys, goes down
+torch's fused path, and capture takes the inner ``scaled_dot_product_attention`` call (seen through
+:class:`~attnscope.capture.notes.CallNotes`, as a torch function mode cannot see it):
+
+* no gradient needed: capture computes that call itself, the statistics and the output from the same pieces of
+  scores (:func:`attnscope.stats.score_sums` with values): attention is computed once and no map is formed.
+  The output equals torch's fused kernel to float rounding (as the math path's, which ``keep="maps"`` runs,
+  does; measured in the tests). Rows with no allowed key give 0, as the fused kernel does.
+* a gradient needed: the call runs as the caller made it (bit-identical, its graph intact) and the statistics
+  are reduced beside it from its queries and keys.
+
+The math path's two ``(B·H, Tq, Tk)`` temporaries per layer are what made statistics cost more than maps: freed
+at once, glibc may give their pages back to the system and the next layer faults them in again. Other calls (a
+score bias, ``bias_k``, zero attention, another torch function mode below capture's, weights asked for) take the
+math path and hand capture the scores its softmax took, so the entropy needs no logarithm per weight
+(:func:`attnscope.stats.head_sums`).
 """
 
 from __future__ import annotations
 
+import functools
 import inspect
 
 import torch
@@ -25,6 +34,8 @@ from attnscope.capture import masks
 from attnscope.capture.notes import CallNotes
 from attnscope.capture.paths.sdpa import fused_sums
 from attnscope.capture.recorder import Frame, Recorder, take
+from attnscope.records import HeadSums
+from attnscope.stats import score_sums
 
 SOURCE = "mha"
 FUNCS = (F.multi_head_attention_forward,)
@@ -51,11 +62,19 @@ def on_call(rec: Recorder, func, args, kwargs):
     # another torch function mode below (an outer capture, a head intervention) would see the call and may
     # change it (an outer capture asks for weights): then the math path, whose weights are what every mode sees
     if rec.keep == "stats" and not want_weights and _fused_fits(a) and torch._C._len_torch_function_stack() == 0:
-        with CallNotes("scaled_dot_product_attention") as seen:
-            result = func(*bound.args, **bound.kwargs)
-        if len(seen.calls) == 1 and _record_fused(rec, frame, a, seen.calls[0]):
+        held: dict = {}
+        tensors = [t for t in (a["query"], a["key"], a["value"]) if isinstance(t, torch.Tensor)]
+        if not (torch.is_grad_enabled() and any(t.requires_grad for t in tensors)):
+            # no gradient needed: capture computes the inner call itself, statistics and output from the same
+            # pieces of scores (attention computed once; the output equals the kernel's to float rounding)
+            with CallNotes("scaled_dot_product_attention", replace=functools.partial(_once, held)) as seen:
+                result = func(*bound.args, **bound.kwargs)
+        else:  # the call runs as the caller made it (its graph intact); statistics beside it
+            with CallNotes("scaled_dot_product_attention") as seen:
+                result = func(*bound.args, **bound.kwargs)
+        if len(seen.calls) == 1 and _record_fused(rec, frame, a, seen.calls[0], held.get("sums")):
             return result
-        # torch did not take the fused path as expected: the math path below (the call runs again, no grad kept)
+        # torch did not take the fused path as expected: the math path below (the call runs again)
     a["need_weights"], a["average_attn_weights"] = True, False
     if rec.keep == "stats":
         with CallNotes("softmax") as seen:
@@ -78,13 +97,33 @@ def _fused_fits(a: dict) -> bool:
             and a["bias_k"] is None and not a["add_zero_attn"] and a["static_k"] is None)
 
 
-def _record_fused(rec: Recorder, frame: Frame, a: dict, call) -> bool:
+def _fits_sdpa(q4, k4, v4=None) -> bool:
+    """``(B, H, T, E)`` queries, keys (and values) of the same heads, as torch's fused MHA path passes them."""
+    four = [t for t in (q4, k4, v4) if t is not None]
+    return (all(isinstance(t, torch.Tensor) and t.dim() == 4 for t in four)
+            and all(t.shape[:2] == q4.shape[:2] for t in four))
+
+
+def _once(held: dict, query, key, value, attn_mask=None, dropout_p=0.0, is_causal=False, scale=None, **kw):
+    """The inner ``scaled_dot_product_attention`` of an MHA call, computed by capture: statistics and output from
+    the same pieces (:func:`~attnscope.stats.score_sums` with values) into *held*; the original otherwise."""
+    if held or dropout_p or kw.get("enable_gqa") or not _fits_sdpa(query, key, value) or \
+            not masks.only_forbids(attn_mask):
+        return torch._C._nn.scaled_dot_product_attention(query, key, value, attn_mask, dropout_p, is_causal,
+                                                         scale=scale, **kw)
+    b, h, tq, tk = query.shape[0], query.shape[1], query.shape[2], key.shape[2]
+    allowed = masks.compact(masks.sdpa_allowed(attn_mask, is_causal, tq, tk), (b, h, tq, tk))
+    held["sums"], out = score_sums(query, key, allowed, scale, 0, v=value)
+    return out.to(query.dtype)
+
+
+def _record_fused(rec: Recorder, frame: Frame, a: dict, call, sums: HeadSums | None) -> bool:
     """Record the statistics of the ``scaled_dot_product_attention`` call torch's fused path made (*call*:
-    ``(args, kwargs, output)``) from its queries and keys; False when the call is not the expected one."""
+    ``(args, kwargs, output)``): *sums* when capture computed the call itself (:func:`_once`), else from the
+    call's queries and keys; False when the call is not the expected one."""
     args, kwargs, _ = call
     q4, k4 = (args[0] if args else kwargs.get("query")), (args[1] if len(args) > 1 else kwargs.get("key"))
-    if not (isinstance(q4, torch.Tensor) and isinstance(k4, torch.Tensor) and q4.dim() == 4 and k4.dim() == 4
-            and q4.shape[:2] == k4.shape[:2]):
+    if not _fits_sdpa(q4, k4):
         return False
     q4, k4 = q4.detach(), k4.detach()
     b, h, tq, tk = q4.shape[0], q4.shape[1], q4.shape[2], k4.shape[2]
@@ -98,7 +137,7 @@ def _record_fused(rec: Recorder, frame: Frame, a: dict, call) -> bool:
         return masks.sdpa_weights(q4[sl][:, hs], k4[sl][:, hs], m, False)
 
     rec.record(frame, kind, (b, h, tq, tk), heads, allowed, causal, SOURCE, 0, compute, builds=True,
-               sums=lambda hs: fused_sums(q4, k4, allowed, hs, 1, None, 0))
+               sums=(lambda hs: fused_sums(q4, k4, allowed, hs, 1, None, 0)) if sums is None else sums.take)
     return True
 
 
