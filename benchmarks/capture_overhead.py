@@ -1,7 +1,7 @@
 """Cost of capture against the plain forward, against the peer (the model's own way to hand out weights), and
 against the floors measured in the same run.
 
-Run: ``python benchmarks/capture_overhead.py [--repeats 7] [--batch 8] [--seq 256]``
+Run: ``python benchmarks/capture_overhead.py [--repeats 7] [--batch 8] [--seq 256] [--heap as-is|warm]``
 
 Setup: 6 layers, d_model 256, 8 heads, batch 8, T=256, eval mode under no_grad, three models:
 
@@ -14,7 +14,9 @@ Setup: 6 layers, d_model 256, 8 heads, batch 8, T=256, eval mode under no_grad, 
   ``output_attentions=True``, which needs the eager model (same weights).
 
 Timings are interleaved (every case once, then again, ...) and the median of each is reported, so a noisy
-neighbour hits every case alike. Targets (from the project's issues):
+neighbour hits every case alike. ``--heap warm`` times the computation alone: the allocator keeps freed memory
+faulted in (:data:`WARM_HEAP`), so no case pays for fresh pages; as-is, keeping maps pays for the fresh memory
+it holds, as it does in a user's process, and which case gets fresh memory varies from run to run. Targets (from the project's issues):
 
 * eager paths: ``keep="maps"`` <= 1.03x the peer;
 * fused path: time to all maps with ``sdpa="weights"`` <= 1.00x the peer (eager ``output_attentions``);
@@ -243,6 +245,20 @@ def kept_bytes(cap) -> int:
     return total + sum(r.norms.nbytes for r in cap.residual)
 
 
+#: ``--heap warm``: glibc keeps freed blocks up to 32 MiB in its heap and never gives the heap back to the
+#: system, so every forward reuses memory that is already faulted in. On the reference machine (a VM) a fresh
+#: page costs about 6 µs: a 16 MiB map written to fresh memory stalls ~24 ms, and which forward of an
+#: interleaved run gets fresh memory is chance, which made the as-is ratios swing by 10-40 % between runs.
+WARM_HEAP = {"MALLOC_MMAP_THRESHOLD_": str(32 * 2**20), "MALLOC_TRIM_THRESHOLD_": str(2**40)}
+
+
+def warm_heap(total: int = 2**30) -> None:
+    """Fault in *total* bytes of heap (16 MiB blocks, each below the mmap threshold) and free them: with
+    :data:`WARM_HEAP` they stay in the heap for the forwards to reuse."""
+    blocks = [torch.ones(4 * 2**20) for _ in range(total // (16 * 2**20))]  # 16 MiB each, every page touched
+    del blocks
+
+
 def _size(n: int) -> str:
     return f"{n / 2**20:.1f} MiB" if n >= 2**20 else f"{n / 1024:.1f} KiB"
 
@@ -257,9 +273,19 @@ def main(argv: list[str] | None = None) -> None:
     p.add_argument("--batch", type=int, default=8)
     p.add_argument("--seq", type=int, default=256)
     p.add_argument("--no-memory", action="store_true", help="skip the peak-RSS subprocesses")
+    p.add_argument("--heap", choices=("as-is", "warm"), default="as-is",
+                   help="as-is: the allocator as a process has it (fresh memory is faulted in, and a forward may "
+                        "or may not get it); warm: times the computation alone (see WARM_HEAP)")
     a = p.parse_args(argv)
+    if a.heap == "warm" and os.environ.get("ATTNSCOPE_BENCH_WARM") != "1":
+        # the allocator settings only take effect in a fresh process
+        env = {**os.environ, **WARM_HEAP, "ATTNSCOPE_BENCH_WARM": "1"}
+        sys.exit(subprocess.run([sys.executable, os.path.abspath(__file__), *(argv if argv is not None else
+                                                                               sys.argv[1:])], env=env).returncode)
+    if a.heap == "warm":
+        warm_heap()
     print(f"torch {torch.__version__}, {torch.get_num_threads()} threads, batch {a.batch}, T={a.seq}, "
-          f"{LAYERS} layers x {HEADS} heads, d_model {D}; median of {a.repeats} interleaved runs")
+          f"{LAYERS} layers x {HEADS} heads, d_model {D}; median of {a.repeats} interleaved runs; heap {a.heap}")
     targets = []
     for kind in ("encoder", "gpt2 eager", "gpt2 sdpa"):
         t = time_cases(cases(kind, a.batch, a.seq), a.repeats)
