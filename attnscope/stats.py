@@ -5,9 +5,9 @@ reduces the stored weights when the head table is asked for) and the analyses bu
 
 The reduction is one pass over memory: the map is walked in pieces small enough to stay in cache
 (:data:`PIECE_BYTES`), and every statistic of a piece (entropy, maximum, distance, leak mass) is taken while the
-piece is there, with one reused temporary (no allocation per piece). Float32 weights are read as they are (no copy of the map); half
-precision pieces are widened to float32 one piece at a time. Per-row values are float32 (relative error about
-1e-7); they are summed over rows in float64.
+piece is there, with one reused temporary (no allocation per piece). Float32 weights are read as they are (no
+copy of the map); half precision pieces are widened to float32 one piece at a time. Per-row values are float32
+(relative error about 1e-7); they are summed over rows in float64.
 
 >>> import torch
 >>> w = torch.full((1, 1, 4, 4), 0.25)            # uniform over 4 keys

@@ -16,7 +16,8 @@ Setup: 6 layers, d_model 256, 8 heads, batch 8, T=256, eval mode under no_grad, 
 Timings are interleaved (every case once, then again, ...) and the median of each is reported, so a noisy
 neighbour hits every case alike. ``--heap warm`` times the computation alone: the allocator keeps freed memory
 faulted in (:data:`WARM_HEAP`), so no case pays for fresh pages; as-is, keeping maps pays for the fresh memory
-it holds, as it does in a user's process, and which case gets fresh memory varies from run to run. Targets (from the project's issues):
+it holds, as it does in a user's process, and which case gets fresh memory varies from run to run.
+Targets (from the project's issues):
 
 * eager paths: ``keep="maps"`` <= 1.03x the peer;
 * fused path: time to all maps with ``sdpa="weights"`` <= 1.00x the peer (eager ``output_attentions``);
@@ -296,7 +297,8 @@ def main(argv: list[str] | None = None) -> None:
             print(f"  {k:<42} {sec * 1e3:>8.1f} {sec / t['plain']:>7.2f}x {sec / peer:>7.2f}x")
         floor_stats = t["floor: plain + stats of 6 maps in memory"] / t["plain"]
         scores_key = "floor: plain + 6 layers' scores, softmax"
-        floor_scores = f"plain + every score and its softmax {t[scores_key] / t['plain']:.2f}x" if scores_key in t else ""
+        floor_scores = (f"plain + every score and its softmax {t[scores_key] / t['plain']:.2f}x"
+                        if scores_key in t else "")
         if kind == "gpt2 sdpa":
             maps = t["maps, sdpa='weights'"]
             targets.append((kind, "maps (sdpa='weights') / peer", maps / peer, 1.00,

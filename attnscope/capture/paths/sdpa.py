@@ -8,8 +8,9 @@ Grouped-query decode steps packed as ``(B, H_kv, n_rep, E)`` queries (one query 
 key/value heads, as HF transformers does for a single token with a mask) are unpacked to
 ``(B, H_q, 1, E)`` when the owning module declares ``num_key_value_groups`` and its head count.
 
-With ``keep="stats"`` and a mask that only allows or forbids keys (or none) no map is formed: :func:`attnscope.stats.score_sums` reduces
-the scores piece by piece, skipping the blocks of keys the mask forbids to every query of a block.
+With ``keep="stats"`` and a mask that only allows or forbids keys (or none) no map is formed:
+:func:`attnscope.stats.score_sums` reduces the scores piece by piece, skipping the blocks of keys the mask
+forbids to every query of a block.
 
 With ``capture(..., sdpa="weights")`` the call is not run at all: capture builds the weights of every head and
 returns ``weights @ V`` as the call's output (equal to the kernel's up to float rounding), so attention is
