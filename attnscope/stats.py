@@ -269,13 +269,13 @@ def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = 
                 out3[s0:s1, r0:r1] = torch.bmm(w.to(v3.dtype), v3[s0:s1, k0:k1])  # (s, r, Ev)
         for key in keys:
             rows[key][:, r0:r1] = block[key].squeeze(-1)
-    rows = {key: v.view(b, h, tq) for key, v in rows.items()}
+    rows = {key: row.view(b, h, tq) for key, row in rows.items()}
     # the weights of a row with a finite top score sum to 1 (softmax); a NaN or +inf score makes them NaN
     top = rows.pop("top")
     rows["sum"] = torch.where(torch.isfinite(top), 1.0, float("nan"))
     empty = n_allowed == 0  # (B, H, Tq)  all zeros, as sdpa_weights leaves them (softmax gave NaN)
-    for v in rows.values():
-        v.masked_fill_(empty, 0.0)
+    for row in rows.values():
+        row.masked_fill_(empty, 0.0)
     top = rows["max"]
     rows["entropy"] = -rows["entropy"] - torch.where(top > 0, top.log() * rows["sum"], 0.0)  # - ln max(w) * Σ w
     rows["leak"] = torch.zeros(b, h, tq)
