@@ -503,3 +503,48 @@ def test_stats_of_torch_multihead_attention_with_a_score_bias_or_added_keys_take
     got = cap.attention[0].stats.means()
     for k, v in expect.items():
         np.testing.assert_allclose(got[k], v, rtol=1e-6, atol=1e-6, err_msg=k)
+
+
+@pytest.mark.parametrize("batch_first", [True, False])
+def test_stats_of_a_torch_seq2seq_with_padding_equal_its_math_path_maps(monkeypatch, batch_first):
+    """nn.Transformer with a padded source, a causal target and a padded memory: every self- and cross-attention
+    call under keep="stats" (MHA's fused route: capture computes each inner attention call once) equals float64
+    brute force on the maps keep="maps" takes from torch's own math path, to 1e-6; the model's output equals the
+    uncaptured model's (torch's fused kernels) to float rounding."""
+    torch.manual_seed(0)
+    model = nn.Transformer(d_model=16, nhead=4, num_encoder_layers=2, num_decoder_layers=2, dim_feedforward=32,
+                           dropout=0.0, batch_first=batch_first).eval()
+    src, tgt = torch.randn(3, 7, 16), torch.randn(3, 5, 16)  # (B, T, E)
+    if not batch_first:
+        src, tgt = src.transpose(0, 1), tgt.transpose(0, 1)
+    pad = torch.zeros(3, 7, dtype=torch.bool)
+    pad[1, 4:] = True  # item 1's source ends at 4
+    causal = nn.Transformer.generate_square_subsequent_mask(5)  # float, -inf above the diagonal
+
+    def run():
+        return model(src, tgt, tgt_mask=causal, src_key_padding_mask=pad, memory_key_padding_mask=pad,
+                     tgt_is_causal=True)
+
+    mha_path = importlib.import_module("attnscope.capture.paths.mha")
+    computed = []
+
+    def watch(*args, v=None, **kw):
+        computed.append(v is not None)
+        return attnscope.stats.score_sums(*args, v=v, **kw)
+
+    monkeypatch.setattr(mha_path, "score_sums", watch)
+    with torch.no_grad():
+        plain = run()
+        with attnscope.capture(model, keep="maps") as maps:
+            run()
+        with attnscope.capture(model, keep="stats") as stats:
+            got = run()
+    assert computed == [True] * 6  # 2 encoder self, 2 decoder self, 2 cross: each computed once by capture
+    torch.testing.assert_close(got, plain, rtol=1e-5, atol=1e-5)
+    assert [r.name for r in maps.attention] == [r.name for r in stats.attention]
+    assert {r.kind for r in stats.attention} == {"self", "cross"}
+    for rec, srec in zip(maps.attention, stats.attention):
+        assert srec.causal == rec.causal
+        expect = brute_means(rec.weights, rec.allowed, rec.query_offset)  # from torch's math-path maps
+        for k, v in expect.items():
+            np.testing.assert_allclose(srec.stats.means()[k], v, rtol=1e-6, atol=1e-6, err_msg=f"{rec.name} {k}")
