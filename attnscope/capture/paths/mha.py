@@ -67,12 +67,13 @@ def on_call(rec: Recorder, func, args, kwargs):
         if not (torch.is_grad_enabled() and any(t.requires_grad for t in tensors)):
             # no gradient needed: capture computes the inner call itself, statistics and output from the same
             # pieces of scores (attention computed once; the output equals the kernel's to float rounding)
-            with CallNotes("scaled_dot_product_attention", replace=functools.partial(_once, held)) as seen:
+            with CallNotes("scaled_dot_product_attention", replace=functools.partial(_once, held, a)) as seen:
                 result = func(*bound.args, **bound.kwargs)
         else:  # the call runs as the caller made it (its graph intact); statistics beside it
             with CallNotes("scaled_dot_product_attention") as seen:
                 result = func(*bound.args, **bound.kwargs)
-        if len(seen.calls) == 1 and _record_fused(rec, frame, a, seen.calls[0], held.get("sums")):
+        if len(seen.calls) == 1 and _record_fused(rec, frame, a, seen.calls[0], held.get("sums"),
+                                                  held.get("allowed")):
             return result
         # torch did not take the fused path as expected: the math path below (the call runs again)
     a["need_weights"], a["average_attn_weights"] = True, False
@@ -104,20 +105,23 @@ def _fits_sdpa(q4, k4, v4=None) -> bool:
             and all(t.shape[:2] == q4.shape[:2] for t in four))
 
 
-def _once(held: dict, query, key, value, attn_mask=None, dropout_p=0.0, is_causal=False, scale=None, **kw):
-    """The inner ``scaled_dot_product_attention`` of an MHA call, computed by capture: statistics and output from
-    the same pieces (:func:`~attnscope.stats.score_sums` with values) into *held*; the original otherwise."""
-    if held or dropout_p or kw.get("enable_gqa") or not _fits_sdpa(query, key, value) or \
-            not masks.only_forbids(attn_mask):
+def _once(held: dict, a: dict, query, key, value, attn_mask=None, dropout_p=0.0, is_causal=False, scale=None,
+          **kw):
+    """The inner ``scaled_dot_product_attention`` of the MHA call with arguments *a*, computed by capture:
+    statistics and output from the same pieces (:func:`~attnscope.stats.score_sums` with values) into *held*;
+    the original otherwise. The allowed keys come from the call's own small masks (what torch merged into
+    *attn_mask*, ``(B·H, Tq, Tk)`` with padding, forbids exactly those keys), not from a pass over the merged one."""
+    if held or dropout_p or kw.get("enable_gqa") or not _fits_sdpa(query, key, value):
         return torch._C._nn.scaled_dot_product_attention(query, key, value, attn_mask, dropout_p, is_causal,
                                                          scale=scale, **kw)
     b, h, tq, tk = query.shape[0], query.shape[1], query.shape[2], key.shape[2]
-    allowed = masks.compact(masks.sdpa_allowed(attn_mask, is_causal, tq, tk), (b, h, tq, tk))
+    held["allowed"] = allowed = _allowed(a, b, h, tq, tk)
     held["sums"], out = score_sums(query, key, allowed, scale, 0, v=value)
     return out.to(query.dtype)
 
 
-def _record_fused(rec: Recorder, frame: Frame, a: dict, call, sums: HeadSums | None) -> bool:
+def _record_fused(rec: Recorder, frame: Frame, a: dict, call, sums: HeadSums | None,
+                  allowed: torch.Tensor | None = None) -> bool:
     """Record the statistics of the ``scaled_dot_product_attention`` call torch's fused path made (*call*:
     ``(args, kwargs, output)``): *sums* when capture computed the call itself (:func:`_once`), else from the
     call's queries and keys; False when the call is not the expected one."""
@@ -127,7 +131,7 @@ def _record_fused(rec: Recorder, frame: Frame, a: dict, call, sums: HeadSums | N
         return False
     q4, k4 = q4.detach(), k4.detach()
     b, h, tq, tk = q4.shape[0], q4.shape[1], q4.shape[2], k4.shape[2]
-    allowed = _allowed(a, b, h, tq, tk)
+    allowed = _allowed(a, b, h, tq, tk) if sums is None else allowed
     kind, heads = _kind(frame, a), rec.kept_heads(h, frame.target().name)
     causal = bool(a["is_causal"]) or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, 0))
 
