@@ -25,7 +25,7 @@ import torch
 
 from attnscope.records import HeadSums
 
-__all__ = ["PIECE_BYTES", "ROW_BLOCK_MIN", "SCORE_PIECE_BYTES", "head_sums", "score_sums"]
+__all__ = ["PIECE_BYTES", "ROW_BLOCK_MIN", "SCORE_PIECE_BYTES", "head_sums", "row_block", "score_sums"]
 
 #: Bytes of float32 weights one piece holds. The piece and its one temporary of the same size are split between
 #: torch's intra-op threads and stay in cache while every statistic is taken. Measured on the reference machine
@@ -169,6 +169,11 @@ def _totals(rows: dict[str, torch.Tensor], n_allowed: torch.Tensor) -> HeadSums:
 #: (measured on the reference machine at T=256: 64-row blocks take 0.6x the time of 32-row blocks).
 ROW_BLOCK_MIN = 64
 
+def row_block(tq: int) -> int:
+    """Query rows per block of :func:`score_sums` for *tq* queries (:data:`ROW_BLOCK_MIN`, or an eighth)."""
+    return min(tq, max(ROW_BLOCK_MIN, -(-tq // 8)))
+
+
 #: Bytes of scores one piece of :func:`score_sums` holds (with the piece's weights beside it: twice this in cache).
 SCORE_PIECE_BYTES = 1024**2
 
@@ -227,7 +232,7 @@ def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = 
     rows = {key: torch.zeros(n, tq) for key in keys}  # per row; rows of blocks that see no key stay 0
     v3 = None if v is None else v.detach().reshape(n, tk, v.shape[-1])  # (B*H, Tk, Ev)
     out3 = None if v is None else torch.zeros(n, tq, v.shape[-1], dtype=v.dtype)  # rows no key reaches stay 0
-    rb = min(tq, max(ROW_BLOCK_MIN, -(-tq // 8)))
+    rb = row_block(tq)
     spans = []  # (r0, r1, k0, k1) of the row blocks some row of which sees a key
     for r0 in range(0, tq, rb):
         r1 = min(tq, r0 + rb)

@@ -163,7 +163,7 @@ def scores_floor(batch: int, seq: int, causal: bool):
     bias = torch.zeros(seq, seq).masked_fill_(~torch.ones(seq, seq, dtype=torch.bool).tril(), float("-inf"))
 
     def run():
-        rb = min(seq, max(S.ROW_BLOCK_MIN, -(-seq // 8)))
+        rb = S.row_block(seq)
         for _ in range(LAYERS):
             for r0 in range(0, seq, rb):
                 r1 = min(seq, r0 + rb)

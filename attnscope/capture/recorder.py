@@ -360,6 +360,12 @@ def take(w: torch.Tensor, sl: slice, hs: list[int], shared: bool = True) -> torc
     return part.float().contiguous()
 
 
+def needs_grad(*tensors: Any) -> bool:
+    """Whether a call on *tensors* (non-tensors ignored) builds an autograd graph: capture must then leave the
+    call's own computation in place."""
+    return torch.is_grad_enabled() and any(isinstance(t, torch.Tensor) and t.requires_grad for t in tensors)
+
+
 def as_4d(t: torch.Tensor) -> torch.Tensor:
     """*t* as ``(B, H, T, E)``: extra leading axes folded into B, missing ones added as size 1."""
     if t.dim() == 4:

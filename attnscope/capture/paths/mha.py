@@ -33,7 +33,7 @@ import torch.nn.functional as F
 from attnscope.capture import masks
 from attnscope.capture.notes import CallNotes
 from attnscope.capture.paths.sdpa import fused_sums
-from attnscope.capture.recorder import Frame, Recorder, take
+from attnscope.capture.recorder import Frame, Recorder, needs_grad, take
 from attnscope.records import HeadSums
 from attnscope.stats import score_sums
 
@@ -63,8 +63,7 @@ def on_call(rec: Recorder, func, args, kwargs):
     # change it (an outer capture asks for weights): then the math path, whose weights are what every mode sees
     if rec.keep == "stats" and not want_weights and _fused_fits(a) and torch._C._len_torch_function_stack() == 0:
         held: dict = {}
-        tensors = [t for t in (a["query"], a["key"], a["value"]) if isinstance(t, torch.Tensor)]
-        if not (torch.is_grad_enabled() and any(t.requires_grad for t in tensors)):
+        if not needs_grad(a["query"], a["key"], a["value"]):
             # no gradient needed: capture computes the inner call itself, statistics and output from the same
             # pieces of scores (attention computed once; the output equals the kernel's to float rounding)
             with CallNotes("scaled_dot_product_attention", replace=functools.partial(_once, held, a)) as seen:

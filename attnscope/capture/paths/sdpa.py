@@ -24,7 +24,7 @@ import torch
 import torch.nn.functional as F
 
 from attnscope.capture import masks, rules
-from attnscope.capture.recorder import Recorder, as_4d, take
+from attnscope.capture.recorder import Recorder, as_4d, needs_grad, take
 from attnscope.stats import score_sums
 
 SOURCE = "sdpa"
@@ -109,9 +109,8 @@ def _unpack(t, groups: int):
 
 def _from_weights_applies(p: dict) -> bool:
     """Whether the call may be computed as ``weights @ V``: no attention dropout, no gradient needed."""
-    tensors = [t for t in (p["query"], p["key"], p["value"], p.get("attn_mask")) if isinstance(t, torch.Tensor)]
-    needs_grad = torch.is_grad_enabled() and any(t.requires_grad for t in tensors)
-    return not needs_grad and not p.get("dropout_p") and p["value"].is_floating_point()
+    return (not needs_grad(p["query"], p["key"], p["value"], p.get("attn_mask")) and not p.get("dropout_p")
+            and p["value"].is_floating_point())
 
 
 def _from_weights(rec: Recorder, frame, p: dict) -> torch.Tensor:
@@ -129,24 +128,21 @@ def _from_weights(rec: Recorder, frame, p: dict) -> torch.Tensor:
     allowed = masks.compact(masks.sdpa_allowed(mask4, is_causal, tq, tk), (b, hq, tq, tk))
     heads = rec.kept_heads(hq, frame.target().name)
     causal = is_causal or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset))
+    vv = v4.repeat_interleave(hq // v4.shape[1], dim=1) if v4.shape[1] != hq else v4  # (B, Hq, Tk, Ev)
     if rec.keep == "stats" and masks.only_forbids(mask4):
         # statistics and output from the same pieces of scores: no map, attention computed once
         kk = k4.repeat_interleave(hq // k4.shape[1], dim=1) if k4.shape[1] != hq else k4  # (B, Hq, Tk, E)
-        vv = v4.repeat_interleave(hq // v4.shape[1], dim=1) if v4.shape[1] != hq else v4  # (B, Hq, Tk, Ev)
         sums, out = score_sums(q4, kk.expand(b, hq, tk, k4.shape[-1]), allowed, p.get("scale"), offset,
                                v=vv.expand(b, hq, tk, v4.shape[-1]))
         rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset,
                    lambda sl, hs: masks.sdpa_weights(q4, kk, mask4, is_causal, p.get("scale"))[sl][:, hs],
-                   sums=lambda hs: sums.take(hs))
+                   sums=sums.take)
         return out.reshape(*q.shape[:-1], v.shape[-1])
     scores = None  # keep="stats" takes the entropy from the masked scores (no logarithm per weight)
     if rec.keep == "stats":
         w, scores = masks.sdpa_weights(q4, k4, mask4, is_causal, p.get("scale"), enable_gqa=gqa, with_scores=True)
     else:
         w = masks.sdpa_weights(q4, k4, mask4, is_causal, p.get("scale"), enable_gqa=gqa)  # (B, Hq, Tq, Tk) float32
-    vv = v4
-    if gqa and v4.shape[1] != hq:
-        vv = v4.repeat_interleave(hq // v4.shape[1], dim=1)  # (B, Hq, Tk, Ev)
     out = torch.matmul(w.to(v.dtype), vv)  # (B, Hq, Tq, Ev)
     rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset,
                lambda sl, hs: take(w, sl, hs), scores=scores)  # capture's own tensor: kept without a copy
