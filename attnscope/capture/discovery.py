@@ -6,13 +6,15 @@ the table); this module walks the model once and applies those rules.
 
 from __future__ import annotations
 
+import weakref
 from dataclasses import dataclass, field
+from typing import Any
 
 from torch import nn
 
 from attnscope.capture.rules import CONTAINERS, NN_LAYERS, is_attention_module, owners
 
-__all__ = ["ModelMap", "is_attention_module", "map_model"]
+__all__ = ["ModelMap", "is_attention_module", "map_model", "walk"]
 
 
 @dataclass(frozen=True)
@@ -39,7 +41,50 @@ class ModelMap:
     helpers: frozenset[str] = frozenset()
 
 
-def map_model(model: nn.Module) -> ModelMap:
+#: model -> (its layout when mapped, its map): a capture per forward walks the model once, not the rules per module
+_maps: weakref.WeakKeyDictionary[nn.Module, tuple[tuple, ModelMap]] = weakref.WeakKeyDictionary()
+
+
+def walk(model: nn.Module) -> tuple[list[tuple[str, nn.Module]], tuple]:
+    """*model*'s modules and its layout, in one walk of the module tree.
+
+    Returns ``(named, layout)``: ``named`` is what ``model.named_modules()`` gives (each module once, under its
+    first name, depth first in registration order); ``layout`` is everything :func:`map_model` reads off the
+    model, per module: its identity, class, child names, names of the parameters it holds itself, and the
+    ``batch_first`` flag an ``nn.MultiheadAttention`` carries. Equal layouts give equal maps; a module added,
+    removed, replaced or given a parameter changes the layout.
+    """
+    named: list[tuple[str, nn.Module]] = []
+    key: list[Any] = []
+    seen: set[int] = set()
+    stack: list[tuple[str, nn.Module]] = [("", model)]
+    while stack:
+        name, m = stack.pop()
+        if id(m) in seen:
+            continue
+        seen.add(id(m))
+        named.append((name, m))
+        children = m._modules
+        key.append((id(m), type(m), tuple(children), tuple(k for k, p in m._parameters.items() if p is not None),
+                    m.__dict__.get("batch_first")))
+        lead = name + "." if name else ""
+        stack.extend((lead + k, c) for k, c in reversed(children.items()) if c is not None)
+    return named, tuple(key)
+
+
+def map_model(model: nn.Module, walked: tuple[list, tuple] | None = None) -> ModelMap:
+    """The :class:`ModelMap` of *model*: worked out once per layout (see :func:`walk`, whose result *walked*
+    may pass in), then looked up."""
+    key = (walked or walk(model))[1]
+    hit = _maps.get(model)
+    if hit is not None and hit[0] == key:
+        return hit[1]
+    found = _map_model(model)
+    _maps[model] = (key, found)
+    return found
+
+
+def _map_model(model: nn.Module) -> ModelMap:
     """Walk *model* once and return its :class:`ModelMap`."""
     named = list(model.named_modules(remove_duplicate=False))
     names: dict[int, str] = {}

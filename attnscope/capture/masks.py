@@ -149,6 +149,11 @@ def added_mask_allowed(mask: torch.Tensor, shape: tuple[int, int, int, int]):
         m = m.unsqueeze(0)
     if m.shape[0] not in (1, b) or m.shape[1] not in (1, h):
         return UNFIT
+    # HF builds one (B, 1, Tq, Tk) mask per forward, most often the same for every item: an exact comparison
+    # of the float values (one pass, no bool temporary) keeps the first item before any threshold is taken
+    for axis in (0, 1):
+        if m.shape[axis] > 1 and torch.equal(m, m.narrow(axis, 0, 1).expand_as(m)):
+            m = m.narrow(axis, 0, 1)
     return compact(~_forbidden_from_float(m), shape)
 
 
@@ -157,7 +162,9 @@ def agrees_with_scores(allowed: torch.Tensor | None, scores: torch.Tensor) -> bo
     *allowed* (compact, or None) forbids: a check of 2 maps out of B·H that a module masked nothing more."""
     b, h = scores.shape[:2]
     for bi, hi in {(0, 0), (b - 1, h - 1)}:
-        ok = ~(scores[bi, hi] <= FORBID_AT)  # (Tq, Tk)  as allowed_from_scores reads it (NaN allowed)
+        # (Tq, Tk): a NaN score counts as forbidden here, where allowed_from_scores reads it as allowed; a map
+        # with NaN fails the check and the scores are read the general way
+        ok = scores[bi, hi] > FORBID_AT
         if allowed is None:
             if not bool(ok.all()):
                 return False

@@ -108,6 +108,7 @@ class Recorder:
         self._tls = threading.local()
         #: id(mask) -> (mask, version, shape, compact allowed): every layer gets the same mask tensor
         self._mask_memo: dict[int, tuple[torch.Tensor, int, tuple, Any]] = {}
+        self._causal_memo: dict[tuple, tuple[torch.Tensor, bool]] = {}  # see is_causal
 
     # ---------------------------------------------------------------- hooks: who is calling
     def _stack(self) -> list[Frame]:
@@ -126,17 +127,18 @@ class Recorder:
             parent = stack[-1] if stack else None
             # a module is selected when named, or when it runs inside a selected one
             selected = self.selected is None or name in self.selected or bool(parent and parent.selected)
-            frame = Frame(name, module, rules.kind_hint(name, module, args, kwargs, self.kinds), selected,
-                          others=rules.other_sequences(module, args))
-            owner_name = self.map.owner.get(name)
-            if owner_name == name:
-                frame.owner = frame
-                frame.mask_arg = rules.mask_argument(module, args, kwargs)
-            elif owner_name is not None:
-                frame.owner = next((f for f in reversed(stack) if f.name == owner_name), None) or (
-                    parent.owner if parent else None)
-            if parent is not None:
-                _note_consumed(parent, args)
+            with _unrouted():  # the tensor queries below are the capture's own: the function mode need not see them
+                frame = Frame(name, module, rules.kind_hint(name, module, args, kwargs, self.kinds), selected,
+                              others=rules.other_sequences(module, args))
+                owner_name = self.map.owner.get(name)
+                if owner_name == name:
+                    frame.owner = frame
+                    frame.mask_arg = rules.mask_argument(module, args, kwargs)
+                elif owner_name is not None:
+                    frame.owner = next((f for f in reversed(stack) if f.name == owner_name), None) or (
+                        parent.owner if parent else None)
+                if parent is not None:
+                    _note_consumed(parent, args)
             stack.append(frame)
             if selected and name in self.map.attention and not self.muted:
                 self.counters.ran.add(name)
@@ -155,7 +157,8 @@ class Recorder:
                 if frame.module is module:
                     break
             if is_block and self.open and not self.muted:
-                self.record_residual(name, output)
+                with _unrouted():
+                    self.record_residual(name, output)
             return None
         return hook
 
@@ -186,10 +189,24 @@ class Recorder:
                 return allowed
         return masks.allowed_from_scores(scores)
 
+    def is_causal(self, allowed: torch.Tensor | None, tq: int, tk: int, offset: int) -> bool:
+        """:func:`~attnscope.capture.masks.is_causal_mask`, worked out once per mask tensor (and version): the
+        layers of one forward share one compact mask."""
+        if allowed is None:
+            return masks.is_causal_mask(None, tq, tk, offset)
+        key = (id(allowed), allowed._version, tq, tk, offset)
+        hit = self._causal_memo.get(key)
+        if hit is None or hit[0] is not allowed:
+            if len(self._causal_memo) > 8:
+                self._causal_memo.clear()
+            hit = self._causal_memo[key] = (allowed, masks.is_causal_mask(allowed, tq, tk, offset))
+        return hit[1]
+
     def release(self) -> None:
         """Drop every model tensor the capture still holds (when it closes): masks of :meth:`allowed_of_softmax`
         and the frames a forward that raised left on this thread's stack."""
         self._mask_memo.clear()
+        self._causal_memo.clear()
         for frame in self._stack():
             frame.release()
         self._stack().clear()
@@ -291,6 +308,11 @@ class Recorder:
         norms = torch.linalg.vector_norm(x.float(), dim=-1).numpy().copy()  # (B, T)
         self.residual.append(ResidualRecord(name=name, norms=norms, call=self.counters.blocks))
         self.counters.blocks += 1
+
+
+#: torch functions called inside it skip every torch function mode (capture's own, above all) and tensor subclass
+#: override: the hooks' own queries of the model's tensors (dtype, shape, storage, norms) cost no dispatch
+_unrouted = torch._C.DisableTorchFunction
 
 
 def _note_consumed(parent: Frame, args: tuple) -> None:

@@ -23,7 +23,7 @@ import torch
 from torch import nn
 from torch.overrides import TorchFunctionMode
 
-from attnscope.capture.discovery import ModelMap, map_model
+from attnscope.capture.discovery import ModelMap, map_model, walk
 from attnscope.capture.paths import PATHS
 from attnscope.capture.paths import flex as flex_path
 from attnscope.capture.paths import tap as tap_path
@@ -154,7 +154,8 @@ class Capture:
         self.keep = keep
         self.max_bytes = max_bytes
         self._model = model
-        self._map: ModelMap = map_model(model)
+        self._named, layout = walk(model)  # (name, module) of every module; the model's layout
+        self._map: ModelMap = map_model(model, (self._named, layout))
         all_names = [n for n in self._map.names.values()]
         self._selected = self._select(layers, all_names)
         if not self._map.attention and layers is None:
@@ -249,7 +250,8 @@ class Capture:
     def __enter__(self) -> Capture:
         if self._state != "new":
             raise CaptureStateError("this capture was already used; make a new one with attnscope.capture(model)")
-        if any(t.is_meta for t in [*self._model.parameters(), *self._model.buffers()]):
+        if any(t is not None and t.is_meta for _, m in self._named
+               for t in (*m._parameters.values(), *m._buffers.values())):
             raise UnsupportedModelError("the model's parameters are on the meta device: there is nothing to "
                                         "compute attention from. Load real weights (model.to_empty + load_state_dict) first.")
         self._state = "open"
@@ -261,14 +263,14 @@ class Capture:
             hold_fastpath_off()
             self._fastpath = True
             blocks = set(self._blocks)
-            for name, module in self._model.named_modules():
+            for name, module in self._named:
                 self._handles.append(module.register_forward_pre_hook(self._rec.pre_hook(name), with_kwargs=True))
                 self._handles.append(module.register_forward_hook(self._rec.post_hook(name, name in blocks),
                                                                   always_call=True))
             self._mode = RoutingMode({f: functools.partial(path.on_call, self._rec)
                                       for path in PATHS for f in path.FUNCS})
             self._mode.__enter__()
-            self._flex_held = flex_path.hold(self._rec, self._model.modules())
+            self._flex_held = flex_path.hold(self._rec, (m for _, m in self._named))
             with _active_lock:
                 _active.append(self)
         except BaseException:

@@ -124,7 +124,7 @@ def _record(rec: Recorder, frame: Frame, params: dict[str, Any]) -> None:
                          b0=range(b)[sl].start if b else 0)
         return w[:, hs].contiguous()  # (b, len(hs), Tq, Tk); score_mod sees every head's index
 
-    causal = kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset)
+    causal = kind == "self" and rec.is_causal(allowed, tq, tk, offset)
     rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute)
 
 
@@ -169,8 +169,8 @@ def _namespaces(modules: Iterable[torch.nn.Module]) -> list[dict[str, Any]]:
     from torch.nn.attention import flex_attention as flex_module
 
     spaces = {id(vars(flex_module)): vars(flex_module)}
-    for m in modules:
-        fn = getattr(type(m).forward, "__globals__", None)
+    for cls in {type(m) for m in modules}:
+        fn = getattr(cls.forward, "__globals__", None)
         if fn is not None:
             spaces[id(fn)] = fn
     return list(spaces.values())
@@ -185,7 +185,11 @@ def hold(rec: Recorder, modules: Iterable[torch.nn.Module]) -> list[tuple[int, s
     with _lock:
         _recorders.append(rec)
         wrapper = None
+        ours = {key[0] for key in _held}  # namespaces where the wrapper already stands in
         for space in _namespaces(modules):
+            # most namespaces never name FlexAttention: one C-level pass over their values' ids rules them out
+            if id(space) not in ours and id(original) not in set(map(id, space.values())):
+                continue
             for name, value in list(space.items()):
                 if value is not original and getattr(value, "__wrapped_flex__", None) is not original:
                     continue

@@ -132,7 +132,7 @@ def _record_fused(rec: Recorder, frame: Frame, a: dict, call, sums: HeadSums | N
     b, h, tq, tk = q4.shape[0], q4.shape[1], q4.shape[2], k4.shape[2]
     allowed = _allowed(a, b, h, tq, tk) if sums is None else allowed
     kind, heads = _kind(frame, a), rec.kept_heads(h, frame.target().name)
-    causal = bool(a["is_causal"]) or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, 0))
+    causal = bool(a["is_causal"]) or (kind == "self" and rec.is_causal(allowed, tq, tk, 0))
 
     def compute(sl: slice, hs: list[int]):  # maps, should a caller ask for them: softmax(Q Kᵀ/√E + mask)
         m = None if allowed is None else allowed[sl] if allowed.shape[0] == b else allowed
@@ -173,6 +173,6 @@ def _record(rec: Recorder, frame: Frame, a: dict, w: torch.Tensor, shared: bool,
     b, h, tq, tk = w4.shape
     kind, allowed = _kind(frame, a), _allowed(a, b, h, tq, tk)
     heads = rec.kept_heads(h, frame.target().name)
-    causal = bool(a["is_causal"]) or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, 0))
+    causal = bool(a["is_causal"]) or (kind == "self" and rec.is_causal(allowed, tq, tk, 0))
     rec.record(frame, kind, (b, h, tq, tk), heads, allowed, causal, SOURCE, 0,
                lambda sl, hs: take(w4, sl, hs, shared), scores=scores)

@@ -69,7 +69,7 @@ def on_call(rec: Recorder, func, args, kwargs):
         return masks.sdpa_weights(q4[sl][:, hs], k4[sl][:, kh], m, is_causal, p.get("scale"),
                                   with_scores=with_scores)
 
-    causal = is_causal or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset))
+    causal = is_causal or (kind == "self" and rec.is_causal(allowed, tq, tk, offset))
     rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute, builds=True,
                scored=lambda sl, hs: compute(sl, hs, with_scores=True),
                sums=(lambda hs: fused_sums(q4, k4, allowed, hs, rep, p.get("scale"), offset))
@@ -127,7 +127,7 @@ def _from_weights(rec: Recorder, frame, p: dict) -> torch.Tensor:
     offset = 0 if (is_causal or kind == "cross") else max(tk - tq, 0)
     allowed = masks.compact(masks.sdpa_allowed(mask4, is_causal, tq, tk), (b, hq, tq, tk))
     heads = rec.kept_heads(hq, frame.target().name)
-    causal = is_causal or (kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset))
+    causal = is_causal or (kind == "self" and rec.is_causal(allowed, tq, tk, offset))
     vv = v4.repeat_interleave(hq // v4.shape[1], dim=1) if v4.shape[1] != hq else v4  # (B, Hq, Tk, Ev)
     if rec.keep == "stats" and masks.only_forbids(mask4):
         # statistics and output from the same pieces of scores: no map, attention computed once

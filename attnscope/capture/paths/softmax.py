@@ -51,7 +51,7 @@ def on_call(rec: Recorder, func, args, kwargs):
     kind = frame.kind()
     offset = 0 if kind == "cross" else max(tk - tq, 0)
     heads = rec.kept_heads(h, target.name)
-    causal = kind == "self" and masks.is_causal_mask(allowed, tq, tk, offset)
+    causal = kind == "self" and rec.is_causal(allowed, tq, tk, offset)
     index = rec.record(frame, kind, (b, h, tq, tk), heads, allowed, causal, SOURCE, offset,
                        lambda sl, hs: take(w, sl, hs, shared=True),  # the model keeps using it
                        scores=scores if scores.dtype == w.dtype == torch.float32 else None)

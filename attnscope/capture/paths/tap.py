@@ -39,7 +39,7 @@ def on_tap(rec: Recorder, weights: torch.Tensor, allowed: torch.Tensor | None, c
     offset = 0 if kind == "cross" else max(tk - tq, 0)
     allowed4 = masks.compact(allowed, (b, h, tq, tk))
     if causal is None:
-        causal = kind == "self" and masks.is_causal_mask(allowed4, tq, tk, offset)
+        causal = kind == "self" and rec.is_causal(allowed4, tq, tk, offset)
     heads = rec.kept_heads(h, frame.target().name)
     replace_at = None
     last = frame.target().last_softmax
