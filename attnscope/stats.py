@@ -25,7 +25,7 @@ import torch
 
 from attnscope.records import HeadSums
 
-__all__ = ["PIECE_BYTES", "ROW_BLOCK_MIN", "SCORE_PIECE_BYTES", "head_sums", "row_block", "score_sums"]
+__all__ = ["PIECE_BYTES", "ROW_BLOCK_MIN", "SCORE_PIECE_BYTES", "head_sums", "row_block", "row_spans", "score_sums"]
 
 #: Bytes of float32 weights one piece holds. The piece and its one temporary of the same size are split between
 #: torch's intra-op threads and stay in cache while every statistic is taken. Measured on the reference machine
@@ -174,6 +174,26 @@ def row_block(tq: int) -> int:
     return min(tq, max(ROW_BLOCK_MIN, -(-tq // 8)))
 
 
+def row_spans(seen: torch.Tensor | None, tq: int, tk: int) -> list[tuple[int, int, int, int]]:
+    """``(r0, r1, k0, k1)`` of each block of query rows (:func:`row_block`) and the keys some row of it may see.
+
+    *seen* is ``(Tq, Tk)`` bool, True where some map's query may see a key (None: every key); a block whose rows
+    see no key is left out, and each block's keys run from the first to the last one any of its rows sees.
+    """
+    rb = row_block(tq)
+    spans = []
+    for r0 in range(0, tq, rb):
+        r1 = min(tq, r0 + rb)
+        k0, k1 = 0, tk
+        if seen is not None:
+            cols = seen[r0:r1].any(dim=0).nonzero()
+            if cols.numel() == 0:
+                continue  # no row of the block sees a key: every weight is 0
+            k0, k1 = int(cols[0]), int(cols[-1]) + 1
+        spans.append((r0, r1, k0, k1))
+    return spans
+
+
 #: Bytes of scores one piece of :func:`score_sums` holds (with the piece's weights beside it: twice this in cache).
 SCORE_PIECE_BYTES = 1024**2
 
@@ -232,17 +252,7 @@ def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = 
     rows = {key: torch.zeros(n, tq) for key in keys}  # per row; rows of blocks that see no key stay 0
     v3 = None if v is None else v.detach().reshape(n, tk, v.shape[-1])  # (B*H, Tk, Ev)
     out3 = None if v is None else torch.zeros(n, tq, v.shape[-1], dtype=v.dtype)  # rows no key reaches stay 0
-    rb = row_block(tq)
-    spans = []  # (r0, r1, k0, k1) of the row blocks some row of which sees a key
-    for r0 in range(0, tq, rb):
-        r1 = min(tq, r0 + rb)
-        k0, k1 = 0, tk
-        if seen is not None:
-            cols = seen[r0:r1].any(dim=0).nonzero()
-            if cols.numel() == 0:
-                continue  # no row of the block sees a key: every weight is 0
-            k0, k1 = int(cols[0]), int(cols[-1]) + 1
-        spans.append((r0, r1, k0, k1))
+    spans = row_spans(seen, tq, tk)
     # one pair of scratch buffers for every piece of the call: (scores, then products) and the piece's weights
     room = max([min(n, max(1, SCORE_PIECE_BYTES // ((r1 - r0) * (k1 - k0) * 4))) * (r1 - r0) * (k1 - k0)
                 for r0, r1, k0, k1 in spans] or [0])

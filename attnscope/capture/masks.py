@@ -18,8 +18,8 @@ import math
 
 import torch
 
-__all__ = ["FORBID_AT", "UNFIT", "added_mask_allowed", "agrees_with_scores", "allowed_from_scores", "causal_allowed",
-           "compact", "is_causal_mask", "only_forbids", "sdpa_weights"]
+__all__ = ["FORBID_AT", "UNFIT", "added_mask_allowed", "agrees_with_scores", "allowed_from_scores", "blocked_weights",
+           "causal_allowed", "compact", "is_causal_mask", "only_forbids", "sdpa_weights"]
 
 #: A float mask value at or below this forbids the key (``-inf``, ``finfo.min``, ``-1e9``, ``-1e4`` do).
 FORBID_AT = -1.0e4
@@ -210,6 +210,10 @@ def sdpa_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | Non
     k = k.detach().float()
     if enable_gqa and k.size(-3) != q.size(-3):
         k = k.repeat_interleave(q.size(-3) // k.size(-3), dim=-3)
+    if not with_scores and (attn_mask is None or attn_mask.dtype == torch.bool):
+        blocked = blocked_weights(q, k, attn_mask, is_causal, scale)
+        if blocked is not None:
+            return blocked[0]
     tq, tk = q.size(-2), k.size(-2)
     scale = 1.0 / math.sqrt(q.size(-1)) if scale is None else scale
     scores = torch.matmul(q * scale, k.transpose(-2, -1))  # (B, H, Tq, Tk); scaling q is the cheaper side
@@ -230,3 +234,66 @@ def sdpa_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | Non
     if empty is not None:
         weights.masked_fill_(empty, 0.0)  # softmax gives NaN there; the fused kernels give a zero output
     return (weights, kept) if with_scores else weights
+
+
+#: :func:`blocked_weights` computes a call in blocks only when they leave out at least this share of the map
+BLOCKED_MIN_SKIP = 0.1
+
+
+def blocked_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | None, is_causal: bool,
+                    scale: float | None = None, v: torch.Tensor | None = None):
+    """softmax(Q Kᵀ · scale) under a mask that only allows or forbids keys, computing only the keys some query of
+    a block of rows may see (:func:`attnscope.stats.row_spans`): a causal mask skips about 40 % of the products at
+    T=256 and more at longer T. Equal to :func:`sdpa_weights` up to float rounding (a forbidden key's weight is
+    exactly 0 either way; only the order of a row's sum can differ).
+
+    ``q`` ``(B, H, Tq, E)`` and ``k`` ``(B, H, Tk, E)`` float32 (one key head per query head), ``attn_mask`` bool
+    (True: may attend) broadcastable to ``(B, H, Tq, Tk)`` or None, ``v`` ``(B, H, Tk, Ev)`` or None. Returns
+    ``(weights (B, H, Tq, Tk), output (B, H, Tq, Ev) in v's dtype, or None)``, rows with no allowed key all zero
+    (as the fused kernels give), or None when the blocks would leave out less than :data:`BLOCKED_MIN_SKIP` of
+    the map (no mask, a padding mask alone) or the shapes are not the plain 4-D ones.
+    """
+    from attnscope.stats import row_spans  # stats imports nothing of capture; import here keeps masks light
+
+    if q.dim() != 4 or k.dim() != 4 or q.shape[:2] != k.shape[:2] or q.dtype != torch.float32 \
+            or k.dtype != torch.float32:
+        return None
+    b, h, tq, e = q.shape
+    tk = k.shape[-2]
+    a = sdpa_allowed(attn_mask, is_causal, tq, tk)
+    if a is None or a.dim() > 4:
+        return None
+    while a.dim() < 4:
+        a = a.unsqueeze(0)
+    if a.shape[0] not in (1, b) or a.shape[1] not in (1, h):
+        return None  # broadcasts to more maps than the call has
+    a = a.expand(a.shape[0], a.shape[1], tq, tk)  # (B or 1, H or 1, Tq, Tk)
+    spans = row_spans(a.any(dim=1).any(dim=0), tq, tk)
+    if sum((r1 - r0) * (k1 - k0) for r0, r1, k0, k1 in spans) > (1 - BLOCKED_MIN_SKIP) * tq * tk:
+        return None
+    n = b * h
+    scale = 1.0 / math.sqrt(e) if scale is None else scale
+    q3, k3 = (q * scale).reshape(n, tq, e), k.reshape(n, tk, e)  # scaling q is the cheaper side
+    shared = a.shape[0] == 1 and a.shape[1] == 1
+    bias = torch.zeros(tq, tk).masked_fill_(~a[0, 0], float("-inf")) if shared else None  # (Tq, Tk)
+    w = torch.zeros(b, h, tq, tk)  # keys no row of a block sees keep weight 0
+    w3 = w.view(n, tq, tk)
+    v3 = None if v is None else v.detach().reshape(n, tk, v.shape[-1])  # (B*H, Tk, Ev)
+    out = None if v is None else torch.zeros(b, h, tq, v.shape[-1], dtype=v.dtype)
+    out3 = None if out is None else out.view(n, tq, -1)
+    for r0, r1, k0, k1 in spans:
+        sc = torch.bmm(q3[:, r0:r1], k3[:, k0:k1].transpose(1, 2))  # (n, r, K)
+        if bias is not None:
+            sc.add_(bias[r0:r1, k0:k1])
+        else:
+            sc.view(b, h, r1 - r0, k1 - k0).masked_fill_(~a[:, :, r0:r1, k0:k1], float("-inf"))
+        torch.softmax(sc, dim=-1, out=sc)  # in place
+        w3[:, r0:r1, k0:k1] = sc
+        if out3 is not None:
+            out3[:, r0:r1] = torch.bmm(sc.to(v3.dtype), v3[:, k0:k1])  # (n, r, Ev)
+    empty = ~a.any(dim=-1, keepdim=True)  # (B or 1, H or 1, Tq, 1)  rows no key reaches: softmax gave NaN
+    if bool(empty.any()):
+        w.masked_fill_(empty, 0.0)
+        if out is not None:
+            out.masked_fill_(empty, 0.0)
+    return w, out

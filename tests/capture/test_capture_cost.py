@@ -114,7 +114,8 @@ def test_weights_changed_in_place_after_capture_took_them_warn():
     assert cap.attention[0].weights.sum(-1).max() == pytest.approx(0.5)  # the records say what happened
 
 
-def test_sdpa_weights_mode_output_differs_from_the_plain_model_by_float_rounding_only():
+def test_sdpa_weights_mode_output_differs_from_the_plain_model_by_float_rounding_only(monkeypatch):
+    monkeypatch.setattr(attnscope.stats, "ROW_BLOCK_MIN", 8)  # causal calls built in row blocks (masks.blocked_weights)
     model = gpt2("sdpa")
     ids = torch.randint(0, 50, (3, 40))
     with torch.no_grad():
@@ -383,6 +384,52 @@ def test_statistics_from_scores_without_a_map_equal_brute_force(monkeypatch, cas
     for key, val in expect.items():
         np.testing.assert_allclose(got[key], val, rtol=1e-6, atol=1e-6, err_msg=key)
     assert got["leak_mass"].tolist() == [0.0] * h
+
+
+@pytest.mark.parametrize("case", ["causal", "window", "decode step", "per-item bool with an empty row"])
+def test_weights_in_row_blocks_equal_an_independent_softmax_and_skip_forbidden_blocks(monkeypatch, case):
+    monkeypatch.setattr(attnscope.stats, "ROW_BLOCK_MIN", 4)  # many blocks, each with its own cut of keys
+    from attnscope.capture import masks
+
+    products = []
+    real_bmm = torch.bmm
+
+    def watch(a, b_, *args, **kw):
+        out = real_bmm(a, b_, *args, **kw)
+        if b_.shape[-2] == 6:  # Q Kᵀ (E = 6), not weights @ V (Ev = 5)
+            products.append(out.numel())
+        return out
+
+    monkeypatch.setattr(masks.torch, "bmm", watch)
+    torch.manual_seed(2)
+    b, h, tq, tk = 2, 3, 40, 40
+    if case == "decode step":
+        tq = 12  # 12 new queries after 28 cached keys, bool mask aligned to the end
+    q, k, v = torch.randn(b, h, tq, 6) * 2, torch.randn(b, h, tk, 6) * 2, torch.randn(b, h, tk, 5)
+    i = torch.arange(tq)[:, None] + (tk - tq)
+    j = torch.arange(tk)[None, :]
+    mask, is_causal = None, False
+    if case == "causal":
+        is_causal = True
+    elif case == "window":
+        mask = (j <= i) & (j > i - 8)
+    elif case == "decode step":
+        mask = j <= i
+    else:
+        mask = (j <= i) & (torch.rand(b, 1, 1, tk) > 0.3)
+        mask = mask.clone()
+        mask[1, 0, 7] = False  # a query that sees no key
+    allowed = masks.sdpa_allowed(mask, is_causal, tq, tk)
+    scale = 1 / math.sqrt(6)
+    want = _independent_weights(q, k, allowed.expand(b, h, tq, tk), scale)  # float64, forbidden keys at -inf
+    w, out = masks.blocked_weights(q, k, mask, is_causal, v=v)
+    np.testing.assert_allclose(w.numpy(), want, rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(out.numpy(), want @ v.double().numpy(), rtol=1e-5, atol=1e-5)  # weights @ V
+    # the keys no query of a block may see are never multiplied (a decode step forbids only a few: 10 % here)
+    assert sum(products) < (0.95 if case == "decode step" else 0.8) * b * h * tq * tk
+    # no mask, or a mask that forbids too little to skip a tenth of the map: the plain computation is kept
+    assert masks.blocked_weights(q, k, None, False) is None
+    assert masks.blocked_weights(q, k, torch.rand(b, 1, 1, tk) > 0.05, False) is None
 
 
 @pytest.mark.parametrize("sdpa", ["beside", "weights"])

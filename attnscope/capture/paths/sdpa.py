@@ -139,11 +139,20 @@ def _from_weights(rec: Recorder, frame, p: dict) -> torch.Tensor:
                    sums=sums.take)
         return out.reshape(*q.shape[:-1], v.shape[-1])
     scores = None  # keep="stats" takes the entropy from the masked scores (no logarithm per weight)
+    blocked = None
     if rec.keep == "stats":
         w, scores = masks.sdpa_weights(q4, k4, mask4, is_causal, p.get("scale"), enable_gqa=gqa, with_scores=True)
+    elif (mask4 is None or mask4.dtype == torch.bool) and (k4.shape[1] in (1, hq) or gqa):
+        # weights and output in the same row blocks, leaving out the keys the mask forbids to a whole block
+        kk = k4.repeat_interleave(hq // k4.shape[1], dim=1) if k4.shape[1] not in (1, hq) else k4
+        blocked = masks.blocked_weights(q4.detach().float(), kk.detach().float().expand(b, hq, tk, k4.shape[-1]),
+                                        mask4, is_causal, p.get("scale"), v=vv.expand(b, hq, tk, v4.shape[-1]))
+    if blocked is not None:
+        w, out = blocked  # (B, Hq, Tq, Tk) float32, (B, Hq, Tq, Ev)
     else:
-        w = masks.sdpa_weights(q4, k4, mask4, is_causal, p.get("scale"), enable_gqa=gqa)  # (B, Hq, Tq, Tk) float32
-    out = torch.matmul(w.to(v.dtype), vv)  # (B, Hq, Tq, Ev)
+        if scores is None:
+            w = masks.sdpa_weights(q4, k4, mask4, is_causal, p.get("scale"), enable_gqa=gqa)  # (B, Hq, Tq, Tk)
+        out = torch.matmul(w.to(v.dtype), vv)  # (B, Hq, Tq, Ev)
     rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset,
                lambda sl, hs: take(w, sl, hs), scores=scores)  # capture's own tensor: kept without a copy
     return out.reshape(*q.shape[:-1], v.shape[-1])
