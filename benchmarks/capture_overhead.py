@@ -31,7 +31,8 @@ bit-identical); for ``keep="stats"``: on the softmax path the plain forward plus
 already in memory (the entropy from the scores beside them); on fused calls (SDPA, and MHA asked for no
 weights, which stays on torch's fused path) the plain forward plus every score some query may see and its
 softmax, in score_sums' row blocks and pieces, nothing reduced: an exact statistic beside an untouched fused
-call cannot cost less.
+call cannot cost less. For ``nn.TransformerEncoder`` that plain forward runs with torch's MHA fast path off
+(:func:`slow_path`): the fast path is one fused C++ call per layer that nothing can look inside.
 Memory: each mode runs in a fresh subprocess with glibc told to return every freed block of 128 KiB or more
 (``benchmarks.scale.EXACT_RSS``); the figure is the peak RSS of a captured forward (its results kept) minus the
 peak RSS of a plain forward of the same process (Linux's VmHWM, reset before each): the plain forward's own
@@ -212,10 +213,26 @@ def cases(kind: str, batch: int, seq: int) -> dict[str, object]:
         runs["floor: plain + recompute 6 maps"] = lambda: (forward(model, args), again())
     reduce = reduce_floor(batch, seq, scores=True)  # every path hands its scores to the statistics
     runs["floor: plain + stats of 6 maps in memory"] = lambda: (forward(model, args), reduce())
-    if kind != "gpt2 eager":  # fused calls (SDPA; MHA asked for no weights): statistics need every score
-        scores = scores_floor(batch, seq, causal=kind == "gpt2 sdpa")
+    if kind == "gpt2 sdpa":  # fused calls: statistics need every score some query may see
+        scores = scores_floor(batch, seq, causal=True)
         runs["floor: plain + 6 layers' scores, softmax"] = lambda: (forward(model, args), scores())
+    elif kind == "encoder":  # MHA asked for no weights: the same, on torch's Python path (see slow_path)
+        scores = scores_floor(batch, seq, causal=False)
+        runs["floor: plain, fast path off"] = lambda: slow_path(model, args)
+        runs["floor: fast path off + 6 layers' scores, softmax"] = lambda: (slow_path(model, args), scores())
     return runs
+
+
+def slow_path(model, args):
+    """The plain forward with torch's MHA fast path switched off: ``nn.TransformerEncoderLayer`` then runs its
+    Python code instead of one fused C++ call per layer, which no hook or function mode can look inside. Any
+    capture of this model pays it (the peer too: MHA hands out weights only off the fast path)."""
+    was = torch.backends.mha.get_fastpath_enabled()
+    torch.backends.mha.set_fastpath_enabled(False)
+    try:
+        return forward(model, args)
+    finally:
+        torch.backends.mha.set_fastpath_enabled(was)
 
 
 def time_cases(runs: dict, repeats: int) -> dict[str, float]:
@@ -320,13 +337,15 @@ def main(argv: list[str] | None = None) -> None:
         t = time_cases(cases(kind, a.batch, a.seq), a.repeats)
         peer = next(v for k, v in t.items() if k.startswith("peer"))
         print(f"\n{kind}")
-        print(f"  {'case':<42} {'ms':>8} {'/ plain':>8} {'/ peer':>8}")
+        print(f"  {'case':<50} {'ms':>8} {'/ plain':>8} {'/ peer':>8}")
         for k, sec in t.items():
-            print(f"  {k:<42} {sec * 1e3:>8.1f} {sec / t['plain']:>7.2f}x {sec / peer:>7.2f}x")
+            print(f"  {k:<50} {sec * 1e3:>8.1f} {sec / t['plain']:>7.2f}x {sec / peer:>7.2f}x")
         floor_stats = t["floor: plain + stats of 6 maps in memory"] / t["plain"]
-        scores_key = "floor: plain + 6 layers' scores, softmax"
-        floor_scores = (f"plain + every score and its softmax {t[scores_key] / t['plain']:.2f}x"
-                        if scores_key in t else "")
+        floor_scores = ""
+        for scores_key, label in (("floor: plain + 6 layers' scores, softmax", "plain"),
+                                  ("floor: fast path off + 6 layers' scores, softmax", "fast path off")):
+            if scores_key in t:
+                floor_scores = f"{label} + every score and its softmax {t[scores_key] / t['plain']:.2f}x"
         if kind == "gpt2 sdpa":
             maps = t["maps, sdpa='weights'"]
             targets.append((kind, "maps (sdpa='weights') / peer", maps / peer, 1.00,
