@@ -30,6 +30,8 @@ class ModelMap:
         owner: module name -> the attention module its calls are recorded under (modules inside attention
             modules only; see :func:`attnscope.capture.rules.owners`).
         helpers: parameter-free attention modules inside another one; their calls go to their owner.
+        hints: (module name, the capture's ``kinds``) -> :func:`attnscope.capture.rules.static_kind_hints`,
+            filled in by captures as modules run (the map is kept while the model's layout is unchanged).
     """
 
     names: dict[int, str]
@@ -39,6 +41,7 @@ class ModelMap:
     seq_first: frozenset[str]
     owner: dict[str, str] = field(default_factory=dict)
     helpers: frozenset[str] = frozenset()
+    hints: dict[tuple, tuple[str | None, str | None]] = field(default_factory=dict, compare=False, repr=False)
 
 
 #: model -> (its layout when mapped, its map): a capture per forward walks the model once, not the rules per module
@@ -50,9 +53,9 @@ def walk(model: nn.Module) -> tuple[list[tuple[str, nn.Module]], tuple]:
 
     Returns ``(named, layout)``: ``named`` is what ``model.named_modules()`` gives (each module once, under its
     first name, depth first in registration order); ``layout`` is everything :func:`map_model` reads off the
-    model, per module: its identity, class, child names, names of the parameters it holds itself, and the
-    ``batch_first`` flag an ``nn.MultiheadAttention`` carries. Equal layouts give equal maps; a module added,
-    removed, replaced or given a parameter changes the layout.
+    model, per module: its identity, class, child names, names of the parameters it holds itself, the
+    ``batch_first`` flag an ``nn.MultiheadAttention`` carries and an ``is_cross_attention`` flag. Equal layouts
+    give equal maps; a module added, removed, replaced or given a parameter changes the layout.
     """
     named: list[tuple[str, nn.Module]] = []
     key: list[Any] = []
@@ -65,8 +68,9 @@ def walk(model: nn.Module) -> tuple[list[tuple[str, nn.Module]], tuple]:
         seen.add(id(m))
         named.append((name, m))
         children = m._modules
+        attrs = m.__dict__
         key.append((id(m), type(m), tuple(children), tuple(k for k, p in m._parameters.items() if p is not None),
-                    m.__dict__.get("batch_first")))
+                    attrs.get("batch_first"), attrs.get("is_cross_attention")))
         lead = name + "." if name else ""
         stack.extend((lead + k, c) for k, c in reversed(children.items()) if c is not None)
     return named, tuple(key)

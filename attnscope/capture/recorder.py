@@ -109,6 +109,7 @@ class Recorder:
         #: id(mask) -> (mask, version, shape, compact allowed): every layer gets the same mask tensor
         self._mask_memo: dict[int, tuple[torch.Tensor, int, tuple, Any]] = {}
         self._causal_memo: dict[tuple, tuple[torch.Tensor, bool]] = {}  # see is_causal
+        self._kinds_key = tuple(kinds)
 
     # ---------------------------------------------------------------- hooks: who is calling
     def _stack(self) -> list[Frame]:
@@ -128,7 +129,11 @@ class Recorder:
             # a module is selected when named, or when it runs inside a selected one
             selected = self.selected is None or name in self.selected or bool(parent and parent.selected)
             with _unrouted():  # the tensor queries below are the capture's own: the function mode need not see them
-                frame = Frame(name, module, rules.kind_hint(name, module, args, kwargs, self.kinds), selected,
+                key = (name, self._kinds_key)
+                hints = self.map.hints.get(key)
+                if hints is None:  # worked out once per module (and kinds=) while the model keeps its layout
+                    hints = self.map.hints[key] = rules.static_kind_hints(name, module, self.kinds)
+                frame = Frame(name, module, rules.kind_hint(name, module, args, kwargs, self.kinds, hints), selected,
                               others=rules.other_sequences(module, args))
                 owner_name = self.map.owner.get(name)
                 if owner_name == name:

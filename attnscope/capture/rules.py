@@ -154,23 +154,35 @@ def is_attention_module(module: nn.Module) -> bool:
 
 
 def kind_hint(name: str, module: nn.Module, args: tuple, kwargs: dict[str, Any],
-              kinds: list[tuple[str, str]]) -> str | None:
+              kinds: list[tuple[str, str]],
+              hints: tuple[str | None, str | None] | None = None) -> str | None:
     """``"self"``/``"cross"`` for a call of *module* (named *name*) when the rules say so before it runs, else None.
 
-    ``kinds`` are the user's ``(pattern, kind)`` overrides. The rule on a projected second tensor is decided
+    ``kinds`` are the user's ``(pattern, kind)`` overrides; ``hints`` what :func:`static_kind_hints` gave for the
+    module before (else worked out here). The rule on a projected second tensor is decided
     while the call runs (:func:`other_sequences`); None leaves the decision to that rule and the attention path.
     """
+    before, after = static_kind_hints(name, module, kinds) if hints is None else hints
+    if before is not None:
+        return before
+    if kwargs and any(kwargs.get(k) is not None for k in _CROSS_KWARGS):
+        return "cross"
+    return after
+
+
+def static_kind_hints(name: str, module: nn.Module, kinds: list[tuple[str, str]]) -> tuple[str | None, str | None]:
+    """The rules of :func:`kind_hint` that do not depend on the call: ``(before, after)``, the hint of the rules
+    that come before the keyword-argument rule (the user's ``kinds``, ``is_cross_attention``) and of those after
+    it (the module's name and class). Capture works them out once per module, not once per call."""
     for pattern, kind in kinds:
         if within(name, pattern):
-            return kind
+            return kind, None
     if getattr(module, "is_cross_attention", False):
-        return "cross"
-    if any(kwargs.get(k) is not None for k in _CROSS_KWARGS):
-        return "cross"
+        return "cross", None
     last = name.rsplit(".", 1)[-1].lower()
     if any(key in last for key in _CROSS_NAME) or "EncDec" in type(module).__name__:
-        return "cross"
-    return None
+        return None, "cross"
+    return None, None
 
 
 def other_sequences(module: nn.Module, args: tuple) -> tuple[torch.Tensor, ...]:

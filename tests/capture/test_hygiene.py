@@ -223,3 +223,41 @@ def test_mha_training_with_dropout_is_bit_identical_and_weights_are_pre_dropout(
     with torch.no_grad():
         _, ref = layer.self_attn(x, x, x, need_weights=True, average_attn_weights=False)
     np.testing.assert_allclose(rec.weights, ref.numpy(), atol=1e-6)
+
+
+def test_a_model_changed_between_captures_is_mapped_again():
+    """capture keeps the model map of a layout (the rules are not applied again per forward); a module replaced,
+    added or re-flagged between two captures must show in the next one."""
+
+    class Attn(nn.Module):
+        def __init__(self, d=8):
+            super().__init__()
+            self.qkv = nn.Linear(d, 3 * d)
+
+        def forward(self, x, ctx=None):
+            q, k, v = self.qkv(x).chunk(3, dim=-1)
+            return F.scaled_dot_product_attention(q[:, None], k[:, None], v[:, None])[:, 0]
+
+    model = nn.Sequential(Attn(), Attn())
+    x = torch.randn(2, 5, 8)
+    with torch.no_grad(), attnscope.capture(model, residual=False) as first:
+        model(x)
+    assert [r.name for r in first.attention] == ["0", "1"]
+    assert [r.kind for r in first.attention] == ["self", "self"]
+    model[1] = Attn()  # replaced: the old module's name now belongs to a new module
+    model.append(Attn())  # added
+    model[0].is_cross_attention = True  # a flag the rules read (transformers sets it on cross-attention blocks)
+    with torch.no_grad(), attnscope.capture(model, residual=False) as second:
+        model(x)
+    assert [r.name for r in second.attention] == ["0", "1", "2"]
+    assert [r.kind for r in second.attention] == ["cross", "self", "self"]
+    model[1].is_cross_attention = True  # the only change: the kept map's per-module hints must not be reused
+    with torch.no_grad(), attnscope.capture(model, residual=False) as third:
+        model(x)
+    assert [r.kind for r in third.attention] == ["cross", "cross", "self"]
+    # the same layout twice: one map
+    from attnscope.capture.discovery import map_model
+
+    assert map_model(model) is map_model(model)
+    del model[2]
+    assert "2" not in map_model(model).attention
