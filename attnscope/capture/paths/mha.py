@@ -40,23 +40,36 @@ from attnscope.stats import score_sums
 SOURCE = "mha"
 FUNCS = (F.multi_head_attention_forward,)
 _SIGNATURE = inspect.signature(F.multi_head_attention_forward)
+_NAMES = tuple(_SIGNATURE.parameters)  # every one positional-or-keyword
+_DEFAULTS = {n: p.default for n, p in _SIGNATURE.parameters.items() if p.default is not p.empty}
+
+
+def _arguments(args: tuple, kwargs: dict) -> dict:
+    """Every argument of one ``F.multi_head_attention_forward`` call by name, defaults filled in: what
+    ``inspect.Signature.bind`` + ``apply_defaults`` give, without their cost per call (a call that does not
+    fit, e.g. a missing argument, goes to them and raises as the call itself would)."""
+    if len(args) <= len(_NAMES) and not any(n in kwargs for n in _NAMES[:len(args)]):
+        a = {**_DEFAULTS, **dict(zip(_NAMES, args)), **kwargs}
+        if len(a) == len(_NAMES):
+            return a
+    bound = _SIGNATURE.bind(*args, **kwargs)
+    bound.apply_defaults()
+    return dict(bound.arguments)
 
 
 def on_call(rec: Recorder, func, args, kwargs):
     frame = rec.frame()
     if frame is None or not frame.selected:
         return func(*args, **kwargs)
-    bound = _SIGNATURE.bind(*args, **kwargs)
-    bound.apply_defaults()
-    a = bound.arguments
+    a = _arguments(args, kwargs)
     want_weights, average = a["need_weights"], a["average_attn_weights"]
     if a["training"] and a["dropout_p"] > 0:
         # Attention dropout draws random numbers differently on the fused and the math path: run the call
         # as it was, then get the (pre-dropout) weights from a second, dropout-free math-path call.
-        result = func(*bound.args, **bound.kwargs)
+        result = func(**a)
         a["need_weights"], a["average_attn_weights"], a["dropout_p"] = True, False, 0.0
         with torch.no_grad():
-            w = func(*bound.args, **bound.kwargs)[1].detach()
+            w = func(**a)[1].detach()
         _record(rec, frame, a, w, shared=False)
         return result
     # another torch function mode below (an outer capture, a head intervention) would see the call and may
@@ -67,10 +80,10 @@ def on_call(rec: Recorder, func, args, kwargs):
             # no gradient needed: capture computes the inner call itself, statistics and output from the same
             # pieces of scores (attention computed once; the output equals the kernel's to float rounding)
             with CallNotes("scaled_dot_product_attention", replace=functools.partial(_once, held, a)) as seen:
-                result = func(*bound.args, **bound.kwargs)
+                result = func(**a)
         else:  # the call runs as the caller made it (its graph intact); statistics beside it
             with CallNotes("scaled_dot_product_attention") as seen:
-                result = func(*bound.args, **bound.kwargs)
+                result = func(**a)
         if len(seen.calls) == 1 and _record_fused(rec, frame, a, seen.calls[0], held.get("sums"),
                                                   held.get("allowed")):
             return result
@@ -78,10 +91,10 @@ def on_call(rec: Recorder, func, args, kwargs):
     a["need_weights"], a["average_attn_weights"] = True, False
     if rec.keep == "stats":
         with CallNotes("softmax") as seen:
-            out, weights = func(*bound.args, **bound.kwargs)
+            out, weights = func(**a)
         scores = _scores_of(seen, weights)
     else:
-        out, weights = func(*bound.args, **bound.kwargs)
+        out, weights = func(**a)
         scores = None
     # the caller gets this very tensor back only when it asked for per-head weights: copy it then
     _record(rec, frame, a, weights.detach(), shared=want_weights and not average, scores=scores)
