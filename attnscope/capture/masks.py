@@ -161,10 +161,16 @@ def agrees_with_scores(allowed: torch.Tensor | None, scores: torch.Tensor) -> bo
     """Whether the first and the last (batch item, head) of ``(B, H, Tq, Tk)`` *scores* forbid exactly the keys
     *allowed* (compact, or None) forbids: a check of 2 maps out of B·H that a module masked nothing more."""
     b, h = scores.shape[:2]
+    # a NaN score counts as forbidden here, where allowed_from_scores reads it as allowed: a map with NaN fails
+    # the check and the scores are read the general way
+    if allowed is not None and b * h > 1 and scores.is_contiguous():
+        # both maps in one strided view (no copy) and one comparison: this runs once per layer
+        ends = scores.view(b * h, *scores.shape[2:])[::b * h - 1]  # (2, Tq, Tk)  maps (0, 0) and (B-1, H-1)
+        want = torch.stack([allowed[0, 0], allowed[-1, -1]]) if allowed.shape[0] * allowed.shape[1] > 1 \
+            else allowed[0, 0].expand_as(ends)  # (2, Tq, Tk)
+        return torch.equal(ends > FORBID_AT, want)
     for bi, hi in {(0, 0), (b - 1, h - 1)}:
-        # (Tq, Tk): a NaN score counts as forbidden here, where allowed_from_scores reads it as allowed; a map
-        # with NaN fails the check and the scores are read the general way
-        ok = scores[bi, hi] > FORBID_AT
+        ok = scores[bi, hi] > FORBID_AT  # (Tq, Tk)
         if allowed is None:
             if not bool(ok.all()):
                 return False
