@@ -109,6 +109,7 @@ class Recorder:
         #: id(mask) -> (mask, version, shape, compact allowed): every layer gets the same mask tensor
         self._mask_memo: dict[int, tuple[torch.Tensor, int, tuple, Any]] = {}
         self._causal_memo: dict[tuple, tuple[torch.Tensor, bool]] = {}  # see is_causal
+        self._sdpa_memo: dict[tuple, tuple[Any, Any, bool]] = {}  # see sdpa_mask
         self._kinds_key = tuple(kinds)
 
     # ---------------------------------------------------------------- hooks: who is calling
@@ -207,11 +208,25 @@ class Recorder:
             hit = self._causal_memo[key] = (allowed, masks.is_causal_mask(allowed, tq, tk, offset))
         return hit[1]
 
+    def sdpa_mask(self, mask: torch.Tensor | None, is_causal: bool, shape: tuple[int, int, int, int]):
+        """``(compact allowed mask, whether the mask only allows or forbids keys)`` of a
+        ``scaled_dot_product_attention`` call with *mask* and *is_causal* on ``(B, H, Tq, Tk)`` scores, worked
+        out once per mask tensor (and version): the layers of one forward share one mask (or none)."""
+        key = (None if mask is None else id(mask), None if mask is None else mask._version, is_causal, shape)
+        hit = self._sdpa_memo.get(key)
+        if hit is None or hit[0] is not mask:
+            if len(self._sdpa_memo) > 8:
+                self._sdpa_memo.clear()
+            allowed = masks.compact(masks.sdpa_allowed(mask, is_causal, shape[2], shape[3]), shape)
+            hit = self._sdpa_memo[key] = (mask, allowed, masks.only_forbids(mask))
+        return hit[1], hit[2]
+
     def release(self) -> None:
         """Drop every model tensor the capture still holds (when it closes): masks of :meth:`allowed_of_softmax`
         and the frames a forward that raised left on this thread's stack."""
         self._mask_memo.clear()
         self._causal_memo.clear()
+        self._sdpa_memo.clear()
         for frame in self._stack():
             frame.release()
         self._stack().clear()

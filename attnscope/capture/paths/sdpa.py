@@ -57,7 +57,7 @@ def on_call(rec: Recorder, func, args, kwargs):
     tk = k4.shape[-2]
     kind = frame.kind()
     offset = 0 if (is_causal or kind == "cross") else max(tk - tq, 0)
-    allowed = masks.compact(masks.sdpa_allowed(mask4, is_causal, tq, tk), (b, hq, tq, tk))
+    allowed, forbids_only = rec.sdpa_mask(mask4, is_causal, (b, hq, tq, tk))
     heads = rec.kept_heads(hq, frame.target().name)
 
     def compute(sl: slice, hs: list[int], with_scores: bool = False):
@@ -73,7 +73,7 @@ def on_call(rec: Recorder, func, args, kwargs):
     rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute, builds=True,
                scored=lambda sl, hs: compute(sl, hs, with_scores=True),
                sums=(lambda hs: fused_sums(q4, k4, allowed, hs, rep, p.get("scale"), offset))
-               if masks.only_forbids(mask4) else None)
+               if forbids_only else None)
     return out
 
 
@@ -125,11 +125,11 @@ def _from_weights(rec: Recorder, frame, p: dict) -> torch.Tensor:
     gqa = bool(p.get("enable_gqa", False))
     kind = frame.kind()
     offset = 0 if (is_causal or kind == "cross") else max(tk - tq, 0)
-    allowed = masks.compact(masks.sdpa_allowed(mask4, is_causal, tq, tk), (b, hq, tq, tk))
+    allowed, forbids_only = rec.sdpa_mask(mask4, is_causal, (b, hq, tq, tk))
     heads = rec.kept_heads(hq, frame.target().name)
     causal = is_causal or (kind == "self" and rec.is_causal(allowed, tq, tk, offset))
     vv = v4.repeat_interleave(hq // v4.shape[1], dim=1) if v4.shape[1] != hq else v4  # (B, Hq, Tk, Ev)
-    if rec.keep == "stats" and masks.only_forbids(mask4):
+    if rec.keep == "stats" and forbids_only:
         # statistics and output from the same pieces of scores: no map, attention computed once
         kk = k4.repeat_interleave(hq // k4.shape[1], dim=1) if k4.shape[1] != hq else k4  # (B, Hq, Tk, E)
         sums, out = score_sums(q4, kk.expand(b, hq, tk, k4.shape[-1]), allowed, p.get("scale"), offset,
