@@ -76,10 +76,10 @@ def walk(model: nn.Module) -> tuple[list[tuple[str, nn.Module]], tuple]:
     return named, tuple(key)
 
 
-def map_model(model: nn.Module, walked: tuple[list, tuple] | None = None) -> ModelMap:
-    """The :class:`ModelMap` of *model*: worked out once per layout (see :func:`walk`, whose result *walked*
-    may pass in), then looked up."""
-    key = (walked or walk(model))[1]
+def map_model(model: nn.Module, layout: tuple | None = None) -> ModelMap:
+    """The :class:`ModelMap` of *model*: worked out once per layout (see :func:`walk`; a caller that walked the
+    model already passes its *layout*), then looked up."""
+    key = walk(model)[1] if layout is None else layout
     hit = _maps.get(model)
     if hit is not None and hit[0] == key:
         return hit[1]

@@ -281,7 +281,10 @@ def blocked_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | 
     scale = 1.0 / math.sqrt(e) if scale is None else scale
     q3, k3 = (q * scale).reshape(n, tq, e), k.reshape(n, tk, e)  # scaling q is the cheaper side
     shared = a.shape[0] == 1 and a.shape[1] == 1
-    bias = torch.zeros(tq, tk).masked_fill_(~a[0, 0], float("-inf")) if shared else None  # (Tq, Tk)
+    bias = None  # (Tq, Tk)  a mask shared by every map as -inf where forbidden (causal alone: the cached one)
+    if shared:
+        bias = _causal_bias(tq, tk) if attn_mask is None else torch.zeros(tq, tk).masked_fill_(~a[0, 0],
+                                                                                            float("-inf"))
     w = torch.zeros(b, h, tq, tk)  # keys no row of a block sees keep weight 0
     w3 = w.view(n, tq, tk)
     v3 = None if v is None else v.detach().reshape(n, tk, v.shape[-1])  # (B*H, Tk, Ev)

@@ -106,10 +106,9 @@ class Recorder:
         #: a tensor the model goes on using (eager paths keep the model's own weights, copying nothing)
         self.borrowed: list[tuple[str, torch.Tensor, int]] = []
         self._tls = threading.local()
-        #: id(mask) -> (mask, version, shape, compact allowed): every layer gets the same mask tensor
-        self._mask_memo: dict[int, tuple[torch.Tensor, int, tuple, Any]] = {}
-        self._causal_memo: dict[tuple, tuple[torch.Tensor, bool]] = {}  # see is_causal
-        self._sdpa_memo: dict[tuple, tuple[Any, Any, bool]] = {}  # see sdpa_mask
+        #: (what, id(tensor), its version, ...) -> (tensor, result): what every layer of a forward works out
+        #: from the one mask tensor they share (see _remember)
+        self._memo: dict[tuple, tuple[Any, Any]] = {}
         self._kinds_key = tuple(kinds)
 
     # ---------------------------------------------------------------- hooks: who is calling
@@ -185,12 +184,7 @@ class Recorder:
         mask = frame.target().mask_arg
         if mask is not None:
             shape = tuple(scores.shape)
-            memo = self._mask_memo.get(id(mask))
-            if memo is None or memo[0] is not mask or memo[1] != mask._version or memo[2] != shape:
-                if len(self._mask_memo) > 8:
-                    self._mask_memo.clear()
-                memo = self._mask_memo[id(mask)] = (mask, mask._version, shape, masks.added_mask_allowed(mask, shape))
-            allowed = memo[3]
+            allowed = self._remember(("added mask", shape), mask, lambda: masks.added_mask_allowed(mask, shape))
             if allowed is not masks.UNFIT and masks.agrees_with_scores(allowed, scores):
                 return allowed
         return masks.allowed_from_scores(scores)
@@ -198,35 +192,31 @@ class Recorder:
     def is_causal(self, allowed: torch.Tensor | None, tq: int, tk: int, offset: int) -> bool:
         """:func:`~attnscope.capture.masks.is_causal_mask`, worked out once per mask tensor (and version): the
         layers of one forward share one compact mask."""
-        if allowed is None:
-            return masks.is_causal_mask(None, tq, tk, offset)
-        key = (id(allowed), allowed._version, tq, tk, offset)
-        hit = self._causal_memo.get(key)
-        if hit is None or hit[0] is not allowed:
-            if len(self._causal_memo) > 8:
-                self._causal_memo.clear()
-            hit = self._causal_memo[key] = (allowed, masks.is_causal_mask(allowed, tq, tk, offset))
-        return hit[1]
+        return self._remember(("causal", tq, tk, offset), allowed,
+                              lambda: masks.is_causal_mask(allowed, tq, tk, offset))
 
     def sdpa_mask(self, mask: torch.Tensor | None, is_causal: bool, shape: tuple[int, int, int, int]):
         """``(compact allowed mask, whether the mask only allows or forbids keys)`` of a
         ``scaled_dot_product_attention`` call with *mask* and *is_causal* on ``(B, H, Tq, Tk)`` scores, worked
         out once per mask tensor (and version): the layers of one forward share one mask (or none)."""
-        key = (None if mask is None else id(mask), None if mask is None else mask._version, is_causal, shape)
-        hit = self._sdpa_memo.get(key)
-        if hit is None or hit[0] is not mask:
-            if len(self._sdpa_memo) > 8:
-                self._sdpa_memo.clear()
-            allowed = masks.compact(masks.sdpa_allowed(mask, is_causal, shape[2], shape[3]), shape)
-            hit = self._sdpa_memo[key] = (mask, allowed, masks.only_forbids(mask))
-        return hit[1], hit[2]
+        return self._remember(("sdpa", is_causal, shape), mask, lambda: (
+            masks.compact(masks.sdpa_allowed(mask, is_causal, shape[2], shape[3]), shape), masks.only_forbids(mask)))
+
+    def _remember(self, what: tuple, tensor: torch.Tensor | None, make: Callable[[], Any]) -> Any:
+        """``make()``, worked out once per *what* and *tensor* (its identity and version; None counts as one
+        tensor): the result is kept, with the tensor, until the capture closes or more than 16 are kept."""
+        key = (*what, None, None) if tensor is None else (*what, id(tensor), tensor._version)
+        hit = self._memo.get(key)
+        if hit is None or hit[0] is not tensor:
+            if len(self._memo) > 16:
+                self._memo.clear()
+            hit = self._memo[key] = (tensor, make())
+        return hit[1]
 
     def release(self) -> None:
         """Drop every model tensor the capture still holds (when it closes): masks of :meth:`allowed_of_softmax`
         and the frames a forward that raised left on this thread's stack."""
-        self._mask_memo.clear()
-        self._causal_memo.clear()
-        self._sdpa_memo.clear()
+        self._memo.clear()
         for frame in self._stack():
             frame.release()
         self._stack().clear()

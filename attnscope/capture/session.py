@@ -155,7 +155,7 @@ class Capture:
         self.max_bytes = max_bytes
         self._model = model
         self._named, layout = walk(model)  # (name, module) of every module; the model's layout
-        self._map: ModelMap = map_model(model, (self._named, layout))
+        self._map: ModelMap = map_model(model, layout)
         all_names = [n for n in self._map.names.values()]
         self._selected = self._select(layers, all_names)
         if not self._map.attention and layers is None:

@@ -129,11 +129,12 @@ def _from_weights(rec: Recorder, frame, p: dict) -> torch.Tensor:
     heads = rec.kept_heads(hq, frame.target().name)
     causal = is_causal or (kind == "self" and rec.is_causal(allowed, tq, tk, offset))
     vv = v4.repeat_interleave(hq // v4.shape[1], dim=1) if v4.shape[1] != hq else v4  # (B, Hq, Tk, Ev)
+    # one key head per query head (GQA repeated, a single shared head broadcast): (B, Hq, Tk, E)
+    kk = (k4.repeat_interleave(hq // k4.shape[1], dim=1) if k4.shape[1] not in (1, hq) else k4).expand(
+        b, hq, tk, k4.shape[-1])
     if rec.keep == "stats" and forbids_only:
         # statistics and output from the same pieces of scores: no map, attention computed once
-        kk = k4.repeat_interleave(hq // k4.shape[1], dim=1) if k4.shape[1] != hq else k4  # (B, Hq, Tk, E)
-        sums, out = score_sums(q4, kk.expand(b, hq, tk, k4.shape[-1]), allowed, p.get("scale"), offset,
-                               v=vv.expand(b, hq, tk, v4.shape[-1]))
+        sums, out = score_sums(q4, kk, allowed, p.get("scale"), offset, v=vv.expand(b, hq, tk, v4.shape[-1]))
         rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset,
                    lambda sl, hs: masks.sdpa_weights(q4, kk, mask4, is_causal, p.get("scale"))[sl][:, hs],
                    sums=sums.take)
@@ -144,9 +145,8 @@ def _from_weights(rec: Recorder, frame, p: dict) -> torch.Tensor:
         w, scores = masks.sdpa_weights(q4, k4, mask4, is_causal, p.get("scale"), enable_gqa=gqa, with_scores=True)
     elif (mask4 is None or mask4.dtype == torch.bool) and (k4.shape[1] in (1, hq) or gqa):
         # weights and output in the same row blocks, leaving out the keys the mask forbids to a whole block
-        kk = k4.repeat_interleave(hq // k4.shape[1], dim=1) if k4.shape[1] not in (1, hq) else k4
-        blocked = masks.blocked_weights(q4.detach().float(), kk.detach().float().expand(b, hq, tk, k4.shape[-1]),
-                                        mask4, is_causal, p.get("scale"), v=vv.expand(b, hq, tk, v4.shape[-1]))
+        blocked = masks.blocked_weights(q4.detach().float(), kk.detach().float(), mask4, is_causal, p.get("scale"),
+                                        v=vv.expand(b, hq, tk, v4.shape[-1]))
     if blocked is not None:
         w, out = blocked  # (B, Hq, Tq, Tk) float32, (B, Hq, Tq, Ev)
     else:
