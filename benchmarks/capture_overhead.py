@@ -42,6 +42,7 @@ peak is the floor every forward pays.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import statistics
@@ -104,16 +105,24 @@ def mha_peer(model, args):
         if isinstance(m, nn.MultiheadAttention):
             handles.append(m.register_forward_pre_hook(ask, with_kwargs=True))
             handles.append(m.register_forward_hook(keep, with_kwargs=True))
-    was = torch.backends.mha.get_fastpath_enabled()
-    torch.backends.mha.set_fastpath_enabled(False)
     try:
-        with torch.no_grad():
+        with torch.no_grad(), fast_path_off():
             model(*args)
     finally:
-        torch.backends.mha.set_fastpath_enabled(was)
         for h in handles:
             h.remove()
     return kept
+
+
+@contextlib.contextmanager
+def fast_path_off():
+    """torch's MHA fast path switched off while the block runs (and back as it was after)."""
+    was = torch.backends.mha.get_fastpath_enabled()
+    torch.backends.mha.set_fastpath_enabled(False)
+    try:
+        yield
+    finally:
+        torch.backends.mha.set_fastpath_enabled(was)
 
 
 class _Idle(TorchFunctionMode):
@@ -161,22 +170,21 @@ def scores_floor(batch: int, seq: int, causal: bool):
 
     n, e = batch * HEADS, D // HEADS
     q, k = torch.randn(n, seq, e), torch.randn(n, seq, e)
-    bias = torch.zeros(seq, seq).masked_fill_(~torch.ones(seq, seq, dtype=torch.bool).tril(), float("-inf"))
+    allowed = torch.ones(seq, seq, dtype=torch.bool).tril()
+    bias = torch.zeros(seq, seq).masked_fill_(~allowed, float("-inf"))
+    spans = S.row_spans(allowed if causal else None, seq, seq)  # the blocks score_sums computes
 
     def run():
-        rb = S.row_block(seq)
         for _ in range(LAYERS):
-            for r0 in range(0, seq, rb):
-                r1 = min(seq, r0 + rb)
-                k1 = r1 if causal else seq
-                per = max(1, S.SCORE_PIECE_BYTES // ((r1 - r0) * k1 * 4))
-                buf = torch.empty(min(per, n), r1 - r0, k1)
+            for r0, r1, k0, k1 in spans:
+                per = max(1, S.SCORE_PIECE_BYTES // ((r1 - r0) * (k1 - k0) * 4))
+                buf = torch.empty(min(per, n), r1 - r0, k1 - k0)
                 wbuf = torch.empty_like(buf)
                 for s0 in range(0, n, per):
                     s1 = min(n, s0 + per)
-                    sc = torch.bmm(q[s0:s1, r0:r1], k[s0:s1, :k1].transpose(1, 2), out=buf[:s1 - s0])
+                    sc = torch.bmm(q[s0:s1, r0:r1], k[s0:s1, k0:k1].transpose(1, 2), out=buf[:s1 - s0])
                     if causal:
-                        sc.add_(bias[r0:r1, :k1])
+                        sc.add_(bias[r0:r1, k0:k1])
                     torch.softmax(sc, dim=-1, out=wbuf[:s1 - s0])
     return run
 
@@ -227,12 +235,8 @@ def slow_path(model, args):
     """The plain forward with torch's MHA fast path switched off: ``nn.TransformerEncoderLayer`` then runs its
     Python code instead of one fused C++ call per layer, which no hook or function mode can look inside. Any
     capture of this model pays it (the peer too: MHA hands out weights only off the fast path)."""
-    was = torch.backends.mha.get_fastpath_enabled()
-    torch.backends.mha.set_fastpath_enabled(False)
-    try:
+    with fast_path_off():
         return forward(model, args)
-    finally:
-        torch.backends.mha.set_fastpath_enabled(was)
 
 
 def time_cases(runs: dict, repeats: int) -> dict[str, float]:
