@@ -20,7 +20,8 @@ from attnscope.capture import masks, rules
 from attnscope.capture.discovery import ModelMap
 from attnscope.errors import MemoryBudgetError, OptionError
 from attnscope.records import AttentionRecord, HeadSums, ResidualRecord
-from attnscope.stats import head_sums
+from attnscope import stats as reductions
+from attnscope.stats import ScorePlan, head_sums
 
 __all__ = ["Frame", "Recorder", "as_4d", "take"]
 
@@ -201,6 +202,12 @@ class Recorder:
         out once per mask tensor (and version): the layers of one forward share one mask (or none)."""
         return self._remember(("sdpa", is_causal, shape), mask, lambda: (
             masks.compact(masks.sdpa_allowed(mask, is_causal, shape[2], shape[3]), shape), masks.only_forbids(mask)))
+
+    def score_plan(self, allowed: torch.Tensor | None, shape: tuple[int, int, int, int]) -> ScorePlan:
+        """:func:`~attnscope.stats.score_plan` of *allowed* for *shape* scores, worked out once per mask tensor
+        (and version): the layers of one forward reduce their scores in the same blocks."""
+        return self._remember(("score plan", shape, reductions.ROW_BLOCK_MIN, reductions.SCORE_PIECE_BYTES),
+                              allowed, lambda: reductions.score_plan(allowed, *shape))
 
     def _remember(self, what: tuple, tensor: torch.Tensor | None, make: Callable[[], Any]) -> Any:
         """``make()``, worked out once per *what* and *tensor* (its identity and version; None counts as one

@@ -386,6 +386,65 @@ def test_statistics_from_scores_without_a_map_equal_brute_force(monkeypatch, cas
     assert got["leak_mass"].tolist() == [0.0] * h
 
 
+def test_a_mask_edited_in_place_between_calls_is_worked_out_again():
+    """The recorder keeps what score_sums works out from a mask per mask tensor, for every layer of a forward:
+    an in-place edit between two calls (a new version) must not reuse it. Each call's statistics against the
+    independent float64 softmax(Q Kᵀ·scale + mask), brute force."""
+    torch.manual_seed(3)
+    b, h, t, e = 2, 3, 9, 4
+    q, k, v = torch.randn(b, h, t, e) * 2, torch.randn(b, h, t, e) * 2, torch.randn(b, h, t, e)
+    allowed = torch.ones(t, t, dtype=torch.bool).tril()[None, None].clone()  # (1, 1, T, T) shared by every map
+
+    class Block(nn.Module):
+        def forward(self, q, k, v):
+            return F.scaled_dot_product_attention(q, k, v, attn_mask=allowed, scale=0.5)
+
+    block, seen = Block(), []
+    with attnscope.capture(block, layers=[""], residual=False, keep="stats") as cap:
+        for _ in range(2):
+            block(q, k, v)
+            seen.append(allowed.clone())
+            allowed[..., 4:, :2] = False  # in place: the second call must see keys 0, 1 forbidden to queries 4+
+    assert len(cap.attention) == 2
+    for rec, mask in zip(cap.attention, seen):
+        expect = brute_means(_independent_weights(q, k, mask.expand(b, h, t, t), 0.5), mask.numpy())
+        for key, val in expect.items():
+            np.testing.assert_allclose(rec.stats.means()[key], val, rtol=1e-6, atol=1e-6, err_msg=key)
+
+
+def test_statistics_on_two_threads_at_once_equal_one_thread():
+    """Each thread keeps its own scratch between calls: two threads reducing different maps at once get what
+    each gets alone (float64 brute force beside it)."""
+    import threading
+
+    torch.manual_seed(4)
+    jobs = []
+    for t in (40, 64):
+        q, k = torch.randn(2, 4, t, 8), torch.randn(2, 4, t, 8)
+        allowed = torch.ones(t, t, dtype=torch.bool).tril()
+        jobs.append((q, k, allowed))
+    alone = [attnscope.stats.score_sums(q, k, a).means() for q, k, a in jobs]
+    got: dict[int, list] = {0: [], 1: []}
+
+    def run(i):
+        q, k, a = jobs[i]
+        for _ in range(20):
+            got[i].append(attnscope.stats.score_sums(q, k, a).means())
+
+    threads = [threading.Thread(target=run, args=(i,)) for i in (0, 1)]
+    for th in threads:
+        th.start()
+    for th in threads:
+        th.join()
+    for i, (q, k, a) in enumerate(jobs):
+        brute = brute_means(_independent_weights(q, k, a.expand(2, 4, *a.shape), 1 / math.sqrt(8)), a.numpy())
+        for key, val in brute.items():
+            np.testing.assert_allclose(alone[i][key], val, rtol=1e-6, atol=1e-6, err_msg=key)
+        for means in got[i]:
+            for key in brute:
+                np.testing.assert_array_equal(means[key], alone[i][key], err_msg=key)  # same computation, same bits
+
+
 @pytest.mark.parametrize("case", ["causal", "window", "decode step", "per-item bool with an empty row"])
 def test_weights_in_row_blocks_equal_an_independent_softmax_and_skip_forbidden_blocks(monkeypatch, case):
     monkeypatch.setattr(attnscope.stats, "ROW_BLOCK_MIN", 4)  # many blocks, each with its own cut of keys
@@ -437,14 +496,16 @@ def test_stats_of_a_fused_call_form_no_map(monkeypatch, sdpa):
     """keep="stats" of an SDPA call with a bool mask reduces scores piece by piece; the whole map never exists
     (with sdpa="weights" the output is built from the same pieces)."""
     largest = []
-    real_bmm = torch.bmm
 
-    def watch(a, b_, *args, **kw):
-        out = real_bmm(a, b_, *args, **kw)
-        largest.append(out.numel())
-        return out
+    def watching(real):
+        def watch(*args, **kw):
+            out = real(*args, **kw)
+            largest.append(out.numel())
+            return out
+        return watch
 
-    monkeypatch.setattr(attnscope.stats.torch, "bmm", watch)
+    for product in ("bmm", "baddbmm"):  # QKᵀ (baddbmm adds a shared mask's bias with it) and weights @ V
+        monkeypatch.setattr(attnscope.stats.torch, product, watching(getattr(torch, product)))
     q = k = v = torch.randn(2, 4, 256, 8)
 
     class Block(nn.Module):

@@ -79,7 +79,7 @@ def on_call(rec: Recorder, func, args, kwargs):
         if not needs_grad(a["query"], a["key"], a["value"]):
             # no gradient needed: capture computes the inner call itself, statistics and output from the same
             # pieces of scores (attention computed once; the output equals the kernel's to float rounding)
-            with CallNotes("scaled_dot_product_attention", replace=functools.partial(_once, held, a)) as seen:
+            with CallNotes("scaled_dot_product_attention", replace=functools.partial(_once, rec, held, a)) as seen:
                 result = func(**a)
         else:  # the call runs as the caller made it (its graph intact); statistics beside it
             with CallNotes("scaled_dot_product_attention") as seen:
@@ -117,8 +117,8 @@ def _fits_sdpa(q4, k4, v4=None) -> bool:
             and all(t.shape[:2] == q4.shape[:2] for t in four))
 
 
-def _once(held: dict, a: dict, query, key, value, attn_mask=None, dropout_p=0.0, is_causal=False, scale=None,
-          **kw):
+def _once(rec: Recorder, held: dict, a: dict, query, key, value, attn_mask=None, dropout_p=0.0, is_causal=False,
+          scale=None, **kw):
     """The inner ``scaled_dot_product_attention`` of the MHA call with arguments *a*, computed by capture:
     statistics and output from the same pieces (:func:`~attnscope.stats.score_sums` with values) into *held*;
     the original otherwise. The allowed keys come from the call's own small masks (what torch merged into
@@ -128,7 +128,8 @@ def _once(held: dict, a: dict, query, key, value, attn_mask=None, dropout_p=0.0,
                                                          scale=scale, **kw)
     b, h, tq, tk = query.shape[0], query.shape[1], query.shape[2], key.shape[2]
     held["allowed"] = allowed = _allowed(a, b, h, tq, tk)
-    held["sums"], out = score_sums(query, key, allowed, scale, 0, v=value)
+    plan = rec.score_plan(allowed, (b, h, tq, tk))
+    held["sums"], out = score_sums(query, key, allowed, scale, 0, v=value, plan=plan)
     return out.to(query.dtype)
 
 
@@ -153,7 +154,7 @@ def _record_fused(rec: Recorder, frame: Frame, a: dict, call, sums: HeadSums | N
         return masks.sdpa_weights(q4[sl][:, hs], k4[sl][:, hs], m, False)
 
     rec.record(frame, kind, (b, h, tq, tk), heads, allowed, causal, SOURCE, 0, compute, builds=True,
-               sums=(lambda hs: fused_sums(q4, k4, allowed, hs, 1, None, 0)) if sums is None else sums.take)
+               sums=(lambda hs: fused_sums(rec, q4, k4, allowed, hs, 1, None, 0)) if sums is None else sums.take)
     return True
 
 

@@ -72,13 +72,13 @@ def on_call(rec: Recorder, func, args, kwargs):
     causal = is_causal or (kind == "self" and rec.is_causal(allowed, tq, tk, offset))
     rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute, builds=True,
                scored=lambda sl, hs: compute(sl, hs, with_scores=True),
-               sums=(lambda hs: fused_sums(q4, k4, allowed, hs, rep, p.get("scale"), offset))
+               sums=(lambda hs: fused_sums(rec, q4, k4, allowed, hs, rep, p.get("scale"), offset))
                if forbids_only else None)
     return out
 
 
-def fused_sums(q4: torch.Tensor, k4: torch.Tensor, allowed: torch.Tensor | None, hs: list[int], rep: int,
-               scale: float | None, offset: int):
+def fused_sums(rec: Recorder, q4: torch.Tensor, k4: torch.Tensor, allowed: torch.Tensor | None, hs: list[int],
+               rep: int, scale: float | None, offset: int):
     """keep="stats" of a fused call whose mask only allows or forbids keys: statistics of heads *hs* with no map
     formed (:func:`~attnscope.stats.score_sums`). *q4* ``(B, Hq, Tq, E)``, *k4* ``(B, Hkv, Tk, E)`` with ``Hq =
     rep · Hkv`` (or one key head), *allowed* compact ``(B or 1, Hq or 1, Tq, Tk)`` or None."""
@@ -88,7 +88,8 @@ def fused_sums(q4: torch.Tensor, k4: torch.Tensor, allowed: torch.Tensor | None,
     a = allowed if allowed is None or allowed.shape[1] == 1 or every else allowed[:, hs]
     qq = q4 if every else q4[:, hs]  # (B, h, Tq, E)
     kk = k4 if kh == list(range(k4.shape[1])) else k4[:, kh]  # (B, h, Tk, E)  one key head per query head
-    return score_sums(qq, kk.expand(b, len(hs), *k4.shape[-2:]), a, scale, offset)
+    plan = rec.score_plan(a, (b, len(hs), q4.shape[2], k4.shape[2]))  # once per mask: every layer shares it
+    return score_sums(qq, kk.expand(b, len(hs), *k4.shape[-2:]), a, scale, offset, plan=plan)
 
 
 def _packed_groups(module, q4, k4) -> int:
@@ -134,7 +135,8 @@ def _from_weights(rec: Recorder, frame, p: dict) -> torch.Tensor:
         b, hq, tk, k4.shape[-1])
     if rec.keep == "stats" and forbids_only:
         # statistics and output from the same pieces of scores: no map, attention computed once
-        sums, out = score_sums(q4, kk, allowed, p.get("scale"), offset, v=vv.expand(b, hq, tk, v4.shape[-1]))
+        sums, out = score_sums(q4, kk, allowed, p.get("scale"), offset, v=vv.expand(b, hq, tk, v4.shape[-1]),
+                               plan=rec.score_plan(allowed, (b, hq, tq, tk)))
         rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset,
                    lambda sl, hs: masks.sdpa_weights(q4, kk, mask4, is_causal, p.get("scale"))[sl][:, hs],
                    sums=sums.take)
