@@ -209,15 +209,28 @@ class Recorder:
         return self._remember(("score plan", shape, reductions.ROW_BLOCK_MIN, reductions.SCORE_PIECE_BYTES),
                               allowed, lambda: reductions.score_plan(allowed, *shape))
 
-    def _remember(self, what: tuple, tensor: torch.Tensor | None, make: Callable[[], Any]) -> Any:
-        """``make()``, worked out once per *what* and *tensor* (its identity and version; None counts as one
-        tensor): the result is kept, with the tensor, until the capture closes or more than 16 are kept."""
-        key = (*what, None, None) if tensor is None else (*what, id(tensor), tensor._version)
+    def mha_allowed(self, attn_mask: torch.Tensor | None, key_padding_mask: torch.Tensor | None, is_causal: bool,
+                    shape: tuple[int, int, int, int]) -> torch.Tensor | None:
+        """The compact allowed mask of an ``nn.MultiheadAttention`` call (its ``attn_mask``, ``key_padding_mask``
+        and ``is_causal`` on ``(B, H, Tq, Tk)`` scores), worked out once per pair of mask tensors (and versions):
+        ``nn.TransformerEncoder`` hands every layer the same padding mask."""
+        def make():
+            b, h, tq, tk = shape
+            mask = ~masks.causal_allowed(tq, tk) if is_causal and attn_mask is None else attn_mask
+            return masks.compact(masks.mha_allowed(mask, key_padding_mask, b, h, tq, tk), shape)
+        return self._remember(("mha", is_causal, shape), (attn_mask, key_padding_mask), make)
+
+    def _remember(self, what: tuple, tensors: torch.Tensor | None | tuple, make: Callable[[], Any]) -> Any:
+        """``make()``, worked out once per *what* and *tensors* (one tensor or a tuple; each by its identity and
+        version, None counting as one tensor): the result is kept, with the tensors, until the capture closes or
+        more than 16 are kept."""
+        ts = tensors if isinstance(tensors, tuple) else (tensors,)
+        key = (*what, *((None, None) if t is None else (id(t), t._version) for t in ts))
         hit = self._memo.get(key)
-        if hit is None or hit[0] is not tensor:
+        if hit is None or any(x is not t for x, t in zip(hit[0], ts)):
             if len(self._memo) > 16:
                 self._memo.clear()
-            hit = self._memo[key] = (tensor, make())
+            hit = self._memo[key] = (ts, make())
         return hit[1]
 
     def release(self) -> None:

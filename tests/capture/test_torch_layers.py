@@ -189,3 +189,39 @@ def test_residual_norms_match_block_outputs(seeded):
         handle.remove()
     expected = outs[0].norm(dim=-1).T.numpy()  # (B, T)
     np.testing.assert_allclose(cap.residual[1].norms, expected, rtol=1e-6)
+
+
+@pytest.mark.parametrize("keep", ["maps", "stats"])
+def test_a_padding_mask_edited_in_place_between_forwards_is_read_again(keep, seeded):
+    """Capture works a call's allowed mask out once per pair of mask tensors (every layer of nn.TransformerEncoder
+    gets the same padding mask); an in-place edit between two forwards of one capture must be read again.
+    Reference: torch's own need_weights=True, average_attn_weights=False for each forward's mask."""
+    layer = nn.TransformerEncoderLayer(16, 4, 32, dropout=0.0, batch_first=True)
+    model = nn.TransformerEncoder(layer, 2, enable_nested_tensor=False).eval()
+    b, t = 3, 7
+    x = torch.randn(b, t, 16)
+    pad = torch.zeros(b, t)  # a float padding mask reaches every layer as the same tensor (a bool one is
+    pad[0, -2:] = float("-inf")  # converted to float anew by each forward)
+    masks_seen = []
+    with torch.no_grad(), attnscope.capture(model, keep=keep, residual=False) as cap:
+        for _ in range(2):
+            model(x, src_key_padding_mask=pad)
+            masks_seen.append(pad.clone())
+            pad[1, -3:] = float("-inf")  # in place: the second forward pads three more keys of item 1
+    assert len(cap.attention) == 4
+    with torch.no_grad():
+        for i, rec in enumerate(cap.attention):
+            mask, li = masks_seen[i // 2], i % 2
+            h_in = x if li == 0 else model.layers[0](x, src_key_padding_mask=mask)
+            ref = reference_weights(model.layers[li].self_attn, h_in, h_in, h_in, key_padding_mask=mask)
+            allowed = np.broadcast_to(np.isfinite(mask.numpy())[:, None, None, :], ref.shape)
+            if keep == "maps":
+                np.testing.assert_array_equal(rec.allowed_full(), allowed)
+                np.testing.assert_allclose(rec.weights, ref, atol=1e-5)
+            else:  # statistics are computed from the scores under the mask capture read: a stale mask gives
+                # weight to padded keys. Entropy per head of torch's weights, scipy's entropy row by row
+                from scipy.stats import entropy
+                want = np.array([np.mean([entropy(row[ok]) for row, ok in zip(ref[:, hh].reshape(-1, t),
+                                                                             allowed[:, hh].reshape(-1, t))])
+                                 for hh in range(4)])
+                np.testing.assert_allclose(rec.stats.means()["entropy"], want, rtol=1e-5, atol=1e-6)

@@ -127,7 +127,7 @@ def _once(rec: Recorder, held: dict, a: dict, query, key, value, attn_mask=None,
         return torch._C._nn.scaled_dot_product_attention(query, key, value, attn_mask, dropout_p, is_causal,
                                                          scale=scale, **kw)
     b, h, tq, tk = query.shape[0], query.shape[1], query.shape[2], key.shape[2]
-    held["allowed"] = allowed = _allowed(a, b, h, tq, tk)
+    held["allowed"] = allowed = _allowed(rec, a, b, h, tq, tk)
     plan = rec.score_plan(allowed, (b, h, tq, tk))
     held["sums"], out = score_sums(query, key, allowed, scale, 0, v=value, plan=plan)
     return out.to(query.dtype)
@@ -144,7 +144,7 @@ def _record_fused(rec: Recorder, frame: Frame, a: dict, call, sums: HeadSums | N
         return False
     q4, k4 = q4.detach(), k4.detach()
     b, h, tq, tk = q4.shape[0], q4.shape[1], q4.shape[2], k4.shape[2]
-    allowed = _allowed(a, b, h, tq, tk) if sums is None else allowed
+    allowed = _allowed(rec, a, b, h, tq, tk) if sums is None else allowed
     kind, heads = _kind(frame, a), rec.kept_heads(h, frame.target().name)
     causal = bool(a["is_causal"]) or (kind == "self" and rec.is_causal(allowed, tq, tk, 0))
 
@@ -174,18 +174,15 @@ def _kind(frame: Frame, a: dict) -> str:
     return frame.known_kind() or ("self" if same else "cross")
 
 
-def _allowed(a: dict, b: int, h: int, tq: int, tk: int) -> torch.Tensor | None:
-    mask, kpm = a["attn_mask"], a["key_padding_mask"]
-    if a["is_causal"] and mask is None:
-        mask = ~masks.causal_allowed(tq, tk)
-    return masks.compact(masks.mha_allowed(mask, kpm, b, h, tq, tk), (b, h, tq, tk))
+def _allowed(rec: Recorder, a: dict, b: int, h: int, tq: int, tk: int) -> torch.Tensor | None:
+    return rec.mha_allowed(a["attn_mask"], a["key_padding_mask"], bool(a["is_causal"]), (b, h, tq, tk))
 
 
 def _record(rec: Recorder, frame: Frame, a: dict, w: torch.Tensor, shared: bool,
             scores: torch.Tensor | None = None) -> None:
     w4 = w.unsqueeze(0) if w.dim() == 3 else w  # (B, H, Tq, Tk)
     b, h, tq, tk = w4.shape
-    kind, allowed = _kind(frame, a), _allowed(a, b, h, tq, tk)
+    kind, allowed = _kind(frame, a), _allowed(rec, a, b, h, tq, tk)
     heads = rec.kept_heads(h, frame.target().name)
     causal = bool(a["is_causal"]) or (kind == "self" and rec.is_causal(allowed, tq, tk, 0))
     rec.record(frame, kind, (b, h, tq, tk), heads, allowed, causal, SOURCE, 0,
