@@ -326,12 +326,14 @@ def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = 
     scratch, wscratch = _workspace(plan.room)
     for (r0, r1, k0, k1), bb, pick in zip(plan.spans, plan.bias_blocks, plan.picks):
         r, kn = r1 - r0, k1 - k0
-        per = max(1, SCORE_PIECE_BYTES // (r * kn * 4))
+        per = min(n, max(1, SCORE_PIECE_BYTES // (r * kn * 4)))
         qb, kb = q3[:, r0:r1], k3[:, k0:k1].transpose(1, 2)  # (n, r, E), (n, E, K)
         db = dist[r0:r1, k0:k1]  # (r, K)
+        span_rows = rows[:, :, r0:r1]  # (5, n, r)
+        bufs, wbufs = (x[:per * r * kn].view(per, r, kn) for x in (scratch, wscratch))  # (per, r, K) each
         for s0 in range(0, n, per):
             s1 = min(n, s0 + per)
-            buf = scratch[:(s1 - s0) * r * kn].view(s1 - s0, r, kn)
+            buf, wbuf = (bufs, wbufs) if s1 - s0 == per else (bufs[:s1 - s0], wbufs[:s1 - s0])
             if bb is not None:  # the shared mask's lowest-float bias, added as the product is made
                 sc = torch.baddbmm(bb, qb[s0:s1], kb[s0:s1], alpha=scale, out=buf)  # (s, r, K)
             else:
@@ -340,9 +342,9 @@ def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = 
                     idx = torch.arange(s0, s1)
                     ap = a[idx // h if a.shape[0] > 1 else 0, idx % h if a.shape[1] > 1 else 0, r0:r1, k0:k1]
                     sc.masked_fill_(~ap.expand_as(sc), _LOWEST)  # (s, r, K)
-            top, ent, mx, dst, snk = (x[s0:s1, r0:r1] for x in rows)  # (s, r) views: written in place
+            top, ent, mx, dst, snk = span_rows[:, s0:s1]  # (s, r) views: written in place
             # (softmax's exponential is the fast one)
-            w = torch.softmax(sc, dim=-1, out=wscratch[:sc.numel()].view(sc.shape))  # (s, r, K)
+            w = torch.softmax(sc, dim=-1, out=wbuf)  # (s, r, K)
             torch.amax(sc, dim=-1, out=top)
             torch.sum(sc.sub_(top.unsqueeze(-1)).mul_(w), dim=-1, out=ent)  # Σ w (s - m); forbidden: w = 0
             torch.amax(w, dim=-1, out=mx)
