@@ -113,7 +113,7 @@ def head_sums(weights: torch.Tensor, allowed: torch.Tensor | None = None, query_
         a_full = a.expand(b, h, tq, tk)
         # a mask shared by every map: its forbidden keys as 0/1 weights once, so a piece's leak is one product
         shared = (~a[0, 0]).to(w_dtype) if a.shape[0] == 1 and a.shape[1] == 1 else None  # (Tq, Tk)
-    slab = tq * tk * 4  # bytes of one (batch item, head) map in float32
+    slab = max(1, tq * tk * 4)  # bytes of one (batch item, head) map in float32 (1 for an empty map)
     if slab <= PIECE_BYTES:
         per = max(1, PIECE_BYTES // slab)
         pieces = [(s0, min(b * h, s0 + per), 0, tq) for s0 in range(0, b * h, per)]  # whole maps
@@ -194,7 +194,7 @@ ROW_BLOCK_MIN = 64
 
 def row_block(tq: int) -> int:
     """Query rows per block of :func:`score_sums` for *tq* queries (:data:`ROW_BLOCK_MIN`, or an eighth)."""
-    return min(tq, max(ROW_BLOCK_MIN, -(-tq // 8)))
+    return max(1, min(tq, max(ROW_BLOCK_MIN, -(-tq // 8))))  # at least 1: a call may have no queries
 
 
 def row_spans(seen: torch.Tensor | None, tq: int, tk: int) -> list[tuple[int, int, int, int]]:
@@ -203,6 +203,8 @@ def row_spans(seen: torch.Tensor | None, tq: int, tk: int) -> list[tuple[int, in
     *seen* is ``(Tq, Tk)`` bool, True where some map's query may see a key (None: every key); a block whose rows
     see no key is left out, and each block's keys run from the first to the last one any of its rows sees.
     """
+    if tk == 0:
+        return []  # no key: every row is empty
     rb = row_block(tq)
     spans = []
     for r0 in range(0, tq, rb):
@@ -260,7 +262,7 @@ def score_plan(allowed: torch.Tensor | None, b: int, h: int, tq: int, tk: int) -
     if a is not None and a.shape[0] == 1 and a.shape[1] == 1:
         bias = torch.zeros(tq, tk).masked_fill_(~a[0, 0], _LOWEST)  # (Tq, Tk)
     seen = None if a is None else a.any(dim=1).any(dim=0)  # (Tq, Tk) keys some map's query may see
-    if a is None:
+    if a is None or tk == 0:
         n_allowed = torch.full((b, h, tq), tk, dtype=torch.int64)
         first = torch.zeros(n, tq, dtype=torch.int64)
     else:
@@ -364,7 +366,7 @@ def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = 
     out["leak"] = torch.zeros(b, h, tq)
     if v3 is None:
         return _totals(out, plan.n_allowed)
-    o = out3.view(b, h, tq, -1)
+    o = out3.view(b, h, tq, v.shape[-1])
     if plan.any_empty:
         o.masked_fill_(plan.empty.unsqueeze(-1), 0.0)  # a row with no allowed key: NaN weights, the kernels give 0
     return _totals(out, plan.n_allowed), o

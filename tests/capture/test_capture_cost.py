@@ -412,6 +412,28 @@ def test_a_mask_edited_in_place_between_calls_is_worked_out_again():
             np.testing.assert_allclose(rec.stats.means()[key], val, rtol=1e-6, atol=1e-6, err_msg=key)
 
 
+@pytest.mark.parametrize("shape", [(1, 1, 1, 1), (2, 3, 1, 5), (1, 2, 5, 1), (2, 2, 0, 4), (2, 2, 4, 0)])
+@pytest.mark.parametrize("mask", ["none", "all forbidden", "per item"])
+def test_statistics_and_output_of_edge_shapes_equal_brute_force(shape, mask):
+    """One query, one key, no query, no key, a mask that forbids everything: score_sums' statistics against
+    brute force on the independent float64 softmax(Q Kᵀ·scale + mask), its output against weights @ V; a call
+    with no row that sees a key counts no row."""
+    torch.manual_seed(5)
+    b, h, tq, tk = shape
+    q, k, v = torch.randn(b, h, tq, 4), torch.randn(b, h, tk, 4), torch.randn(b, h, tk, 4)
+    allowed = {"none": None, "all forbidden": torch.zeros(tq, tk, dtype=torch.bool),
+               "per item": torch.rand(b, 1, tq, tk) > 0.5}[mask]
+    full = torch.ones(b, h, tq, tk, dtype=torch.bool) if allowed is None else allowed.expand(b, h, tq, tk)
+    w = _independent_weights(q, k, full, 0.5)
+    sums, out = attnscope.stats.score_sums(q, k, allowed, 0.5, v=v)
+    np.testing.assert_allclose(out.numpy(), w @ v.double().numpy(), atol=1e-6)
+    counted = full.any(dim=-1).sum(dim=(0, 2)).numpy()  # rows with an allowed key, per head
+    np.testing.assert_array_equal(sums.rows, counted)
+    if counted.all():
+        for key, val in brute_means(w, full.numpy()).items():
+            np.testing.assert_allclose(sums.means()[key], val, rtol=1e-6, atol=1e-6, err_msg=key)
+
+
 def test_statistics_on_two_threads_at_once_equal_one_thread():
     """Each thread keeps its own scratch between calls: two threads reducing different maps at once get what
     each gets alone (float64 brute force beside it)."""
