@@ -678,3 +678,27 @@ def test_stats_of_a_torch_seq2seq_with_padding_equal_its_math_path_maps(monkeypa
         expect = brute_means(rec.weights, rec.allowed, rec.query_offset)  # from torch's math-path maps
         for k, v in expect.items():
             np.testing.assert_allclose(srec.stats.means()[k], v, rtol=1e-6, atol=1e-6, err_msg=f"{rec.name} {k}")
+
+
+@pytest.mark.parametrize("tk", [8, 13, 256])
+@pytest.mark.parametrize("per_item", [False, True])
+def test_mask_agreement_check_equals_a_numpy_comparison(tk, per_item):
+    """The per-layer check that a softmax's scores forbid exactly the keys its mask argument forbids (first and
+    last map, compared eight keys to a word where the layout allows) against a plain numpy comparison of the same
+    two maps, over random masks, one flipped key, and a NaN score."""
+    from attnscope.capture import masks
+
+    rng = np.random.default_rng(tk)
+    b, h, tq = 3, 2, 5
+    for trial in range(12):
+        allowed = torch.from_numpy(rng.random((b if per_item else 1, 1, tq, tk)) > 0.3)
+        scores = torch.randn(b, h, tq, tk).masked_fill(~allowed, torch.finfo(torch.float32).min)
+        if trial % 3 == 1:  # one key of one end map disagrees with the mask
+            bi, hi = (0, 0) if trial % 2 else (b - 1, h - 1)
+            i, j = rng.integers(tq), rng.integers(tk)
+            scores[bi, hi, i, j] = 0.5 if not allowed[min(bi, allowed.shape[0] - 1), 0, i, j] else -1e30
+        if trial % 3 == 2:
+            scores[b - 1, h - 1, 0, 0] = float("nan")
+        s, a = scores.numpy(), np.broadcast_to(allowed.numpy(), (b, h, tq, tk))
+        want = all(np.array_equal(s[bi, hi] > masks.FORBID_AT, a[bi, hi]) for bi, hi in ((0, 0), (b - 1, h - 1)))
+        assert masks.agrees_with_scores(allowed, scores) == want, trial
