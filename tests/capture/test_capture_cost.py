@@ -690,6 +690,7 @@ def test_mask_agreement_check_equals_a_numpy_comparison(tk, per_item):
 
     rng = np.random.default_rng(tk)
     b, h, tq = 3, 2, 5
+    outcomes = set()
     for trial in range(12):
         allowed = torch.from_numpy(rng.random((b if per_item else 1, 1, tq, tk)) > 0.3)
         scores = torch.randn(b, h, tq, tk).masked_fill(~allowed, torch.finfo(torch.float32).min)
@@ -702,3 +703,5 @@ def test_mask_agreement_check_equals_a_numpy_comparison(tk, per_item):
         s, a = scores.numpy(), np.broadcast_to(allowed.numpy(), (b, h, tq, tk))
         want = all(np.array_equal(s[bi, hi] > masks.FORBID_AT, a[bi, hi]) for bi, hi in ((0, 0), (b - 1, h - 1)))
         assert masks.agrees_with_scores(allowed, scores) == want, trial
+        outcomes.add(want)
+    assert outcomes == {True, False}  # both answers were put to the check
