@@ -165,27 +165,28 @@ def recompute_floor(batch: int, seq: int):
 
 
 def scores_floor(batch: int, seq: int, causal: bool):
-    """Every score of 6 layers some query may see (QKᵀ in the row blocks and pieces score_sums takes) and its
-    softmax, nothing reduced: the least an exact statistic of a fused call costs beside the untouched call."""
+    """Every score of 6 layers some query may see and its softmax, nothing reduced, made as score_sums makes them
+    (its plan's row blocks and shared-mask bias, added and scaled inside the product, in its pieces): the least
+    an exact statistic of a fused call costs beside the untouched call."""
     import attnscope.stats as S
 
-    n, e = batch * HEADS, D // HEADS
-    q, k = torch.randn(n, seq, e), torch.randn(n, seq, e)
-    allowed = torch.ones(seq, seq, dtype=torch.bool).tril()
-    bias = torch.zeros(seq, seq).masked_fill_(~allowed, float("-inf"))
-    spans = S.row_spans(allowed if causal else None, seq, seq)  # the blocks score_sums computes
+    e = D // HEADS
+    q, k = torch.randn(batch * HEADS, seq, e), torch.randn(batch * HEADS, seq, e)
+    allowed = torch.ones(seq, seq, dtype=torch.bool).tril() if causal else None
+    plan = S.score_plan(allowed, batch, HEADS, seq, seq)  # the blocks and bias score_sums uses
+    n, scale = batch * HEADS, 1.0 / e ** 0.5
 
     def run():
         for _ in range(LAYERS):
-            for r0, r1, k0, k1 in spans:
-                per = max(1, S.SCORE_PIECE_BYTES // ((r1 - r0) * (k1 - k0) * 4))
-                buf = torch.empty(min(per, n), r1 - r0, k1 - k0)
+            for (r0, r1, k0, k1), bb in zip(plan.spans, plan.bias_blocks):
+                per = min(n, max(1, S.SCORE_PIECE_BYTES // ((r1 - r0) * (k1 - k0) * 4)))
+                buf = torch.empty(per, r1 - r0, k1 - k0)
                 wbuf = torch.empty_like(buf)
                 for s0 in range(0, n, per):
                     s1 = min(n, s0 + per)
-                    sc = torch.bmm(q[s0:s1, r0:r1], k[s0:s1, k0:k1].transpose(1, 2), out=buf[:s1 - s0])
-                    if causal:
-                        sc.add_(bias[r0:r1, k0:k1])
+                    qb, kb, out = q[s0:s1, r0:r1], k[s0:s1, k0:k1].transpose(1, 2), buf[:s1 - s0]
+                    sc = torch.baddbmm(out, qb, kb, beta=0, alpha=scale, out=out) if bb is None else \
+                        torch.baddbmm(bb, qb, kb, alpha=scale, out=out)
                     torch.softmax(sc, dim=-1, out=wbuf[:s1 - s0])
     return run
 
