@@ -172,6 +172,8 @@ def _attention(zf: zipfile.ZipFile, e: dict, where: str) -> AttentionRecord:
     if len(shape) != 4 or (weights is not None and weights.shape != (shape[0], len(heads), shape[2], shape[3])):
         raise CaptureFileError(f"{where}: record {e['name']!r} has weights {None if weights is None else weights.shape} "
                                f"that do not fit its shape {shape} and heads {heads}")
+    if weights is None and stats is None:
+        raise CaptureFileError(f"{where}: record {e['name']!r} holds neither weights nor statistics")
     if e["kind"] not in ("self", "cross"):
         raise CaptureFileError(f"{where}: record {e['name']!r} has unknown kind {e['kind']!r}")
     return AttentionRecord(name=str(e["name"]), kind=e["kind"], weights=weights, allowed=parts.get("allowed"),

@@ -12,7 +12,8 @@ import torch
 from torch import nn
 
 import attnscope
-from attnscope.errors import CaptureFileError
+from attnscope.capture import record_sums
+from attnscope.errors import CaptureFileError, ShapeError
 
 
 @pytest.fixture(params=["maps", "stats"])
@@ -83,11 +84,19 @@ def test_refuses_what_is_not_a_capture(cap, tmp_path):
             return buf.getvalue()
         return data
 
+    def no_data(name, data):  # record 0 lists neither weights nor statistics (and its arrays are gone)
+        if name == "capture.json":
+            m = json.loads(data)
+            m["attention"][0]["arrays"] = {}
+            return json.dumps(m)
+        return None if name.startswith("attention/0/") else data
+
     def wrong_format(name, data):
         return json.dumps({"format": "something-else"}) if name == "capture.json" else data
 
     for label, edit in {"wrong version": version, "missing array": drop_array,
-                        "pickle-bearing array": object_array, "wrong format": wrong_format}.items():
+                        "pickle-bearing array": object_array, "wrong format": wrong_format,
+                        "record without data": no_data}.items():
         p = tmp_path / f"{label.replace(' ', '_')}.attnscope"
         _rewrite(good, p, edit)
         cases[label] = p
@@ -107,6 +116,16 @@ def test_refuses_what_is_not_a_capture(cap, tmp_path):
         attnscope.load(cases["wrong version"])
     with pytest.raises(CaptureFileError, match="without pickle"):
         attnscope.load(cases["pickle-bearing array"])
+    with pytest.raises(CaptureFileError, match="neither weights nor statistics"):
+        attnscope.load(cases["record without data"])
+
+
+def test_a_record_without_data_has_no_statistics(cap):
+    import dataclasses
+
+    empty = dataclasses.replace(cap.attention[0], weights=None, stats=None)
+    with pytest.raises(ShapeError, match="neither weights nor statistics"):
+        record_sums(empty)
 
 
 def test_load_never_unpickles(tmp_path, monkeypatch):

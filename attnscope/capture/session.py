@@ -35,6 +35,7 @@ from attnscope.errors import (
     CaptureStateError,
     NoAttentionError,
     OptionError,
+    ShapeError,
     UnsupportedModelError,
     suggest,
 )
