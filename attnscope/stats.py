@@ -22,7 +22,6 @@ import functools
 import math
 import threading
 
-import numpy as np
 import torch
 
 from attnscope.records import HeadSums

@@ -20,7 +20,7 @@ from __future__ import annotations
 import torch
 import torch.nn.functional as F
 
-from attnscope.capture import masks, rules
+from attnscope.capture import rules
 from attnscope.capture.notes import noting
 from attnscope.capture.recorder import Recorder, take
 
