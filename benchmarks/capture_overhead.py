@@ -13,10 +13,12 @@ Setup: 6 layers, d_model 256, 8 heads, batch 8, T=256, eval mode under no_grad, 
 * ``gpt2 sdpa``: the same weights with ``attn_implementation="sdpa"`` (the fused path). Peer: transformers'
   ``output_attentions=True``, which needs the eager model (same weights).
 
-Timings are interleaved (every case once, then again, ...) and the median of each is reported, so a noisy
-neighbour hits every case alike. ``--heap warm`` times the computation alone: the allocator keeps freed memory
-faulted in (:data:`WARM_HEAP`), so no case pays for fresh pages; as-is, keeping maps pays for the fresh memory
-it holds, as it does in a user's process, and which case gets fresh memory varies from run to run.
+Timings are interleaved (every case once, then again, ...: a round) and the median of each is reported, so a
+noisy neighbour hits every case alike; every ratio is the median over rounds of the two cases' times in the same
+round, with the quartiles of those per-round ratios printed beside the targets (see :class:`Paired`).
+``--heap warm`` times the computation alone: the allocator keeps freed memory faulted in (:data:`WARM_HEAP`), so
+no case pays for fresh pages; as-is, keeping maps pays for the fresh memory it holds, as it does in a user's
+process, and which case gets fresh memory varies from run to run.
 Targets (from the project's issues):
 
 * eager paths: ``keep="maps"`` <= 1.03x the peer (printed beside it, for information: ``residual=False``, which
@@ -27,9 +29,9 @@ Targets (from the project's issues):
 
 Floors, measured in the same run: what the peer's weights already cost (eager paths: the weights exist, so
 keeping them costs nothing beyond the peer), and the peer under capture's mechanism doing nothing (a pre-hook
-and hook on every module, a torch function mode seeing every call); the plain forward plus recomputing 6 maps (fused path left
-bit-identical); for ``keep="stats"``: on the softmax path the plain forward plus the statistics of 6 maps
-already in memory (the entropy from the scores beside them); on fused calls (SDPA, and MHA asked for no
+and hook on every module, a torch function mode seeing every call); the plain forward plus recomputing 6 maps
+(fused path left bit-identical); for ``keep="stats"``: on the softmax path the plain forward plus the statistics
+of 6 maps already in memory (the entropy from the scores beside them); on fused calls (SDPA, and MHA asked for no
 weights, which stays on torch's fused path) the plain forward plus every score some query may see and its
 softmax, in score_sums' row blocks and pieces, nothing reduced: an exact statistic beside an untouched fused
 call cannot cost less. For ``nn.TransformerEncoder`` that plain forward runs with torch's MHA fast path off
@@ -243,7 +245,8 @@ def slow_path(model, args):
         return forward(model, args)
 
 
-def time_cases(runs: dict, repeats: int) -> dict[str, float]:
+def time_cases(runs: dict, repeats: int) -> dict[str, list[float]]:
+    """Seconds of every run of every case: each round runs every case once, in order (interleaved)."""
     for fn in runs.values():  # warm-up
         fn()
     times = {k: [] for k in runs}
@@ -252,7 +255,31 @@ def time_cases(runs: dict, repeats: int) -> dict[str, float]:
             t0 = time.perf_counter()
             fn()
             times[k].append(time.perf_counter() - t0)
-    return {k: statistics.median(v) for k, v in times.items()}
+    return times
+
+
+class Paired:
+    """Times of one interleaved run: ``t[case]`` is the case's median; ``ratio(a, b)`` the median over rounds of
+    a's time over b's time in the same round, ``spread(a, b)`` the quartiles of those ratios. A round runs every
+    case within a second or two, so a slow spell of the machine that lasts longer hits both sides of each ratio;
+    a ratio of two medians taken from different rounds does not cancel it."""
+
+    def __init__(self, times: dict[str, list[float]]) -> None:
+        self.times = times
+        self.t = {k: statistics.median(v) for k, v in times.items()}
+
+    def per_round(self, a: str, b: str) -> list[float]:
+        return [x / y for x, y in zip(self.times[a], self.times[b])]
+
+    def ratio(self, a: str, b: str) -> float:
+        return statistics.median(self.per_round(a, b))
+
+    def spread(self, a: str, b: str) -> str:
+        r = sorted(self.per_round(a, b))
+        if len(r) < 4:
+            return f"{r[0]:.2f}-{r[-1]:.2f}"
+        q1, _, q3 = statistics.quantiles(r, n=4)
+        return f"{q1:.2f}-{q3:.2f}"
 
 
 def _peak_of(fn) -> int:
@@ -339,52 +366,60 @@ def main(argv: list[str] | None = None) -> None:
     if a.heap == "warm":
         warm_heap()
     print(f"torch {torch.__version__}, {torch.get_num_threads()} threads, batch {a.batch}, T={a.seq}, "
-          f"{LAYERS} layers x {HEADS} heads, d_model {D}; median of {a.repeats} interleaved runs; heap {a.heap}")
+          f"{LAYERS} layers x {HEADS} heads, d_model {D}; {a.repeats} interleaved rounds (ms: medians); heap {a.heap}")
     targets = []
     for kind in ("encoder", "gpt2 eager", "gpt2 sdpa"):
-        t = time_cases(cases(kind, a.batch, a.seq), a.repeats)
-        peer = next(v for k, v in t.items() if k.startswith("peer"))
+        run = Paired(time_cases(cases(kind, a.batch, a.seq), a.repeats))
+        t = run.t
+        peer_key = next(k for k in t if k.startswith("peer"))
         print(f"\n{kind}")
         print(f"  {'case':<50} {'ms':>8} {'/ plain':>8} {'/ peer':>8}")
         for k, sec in t.items():
-            print(f"  {k:<50} {sec * 1e3:>8.1f} {sec / t['plain']:>7.2f}x {sec / peer:>7.2f}x")
-        floor_stats = t["floor: plain + stats of 6 maps in memory"] / t["plain"]
+            print(f"  {k:<50} {sec * 1e3:>8.1f} {run.ratio(k, 'plain'):>7.2f}x {run.ratio(k, peer_key):>7.2f}x")
+        floor_stats = run.ratio("floor: plain + stats of 6 maps in memory", "plain")
         floor_scores = ""
         for scores_key, label in (("floor: plain + 6 layers' scores, softmax", "plain"),
                                   ("floor: fast path off + 6 layers' scores, softmax", "fast path off")):
             if scores_key in t:
-                floor_scores = f"{label} + every score and its softmax {t[scores_key] / t['plain']:.2f}x"
+                floor_scores = f"{label} + every score and its softmax {run.ratio(scores_key, 'plain'):.2f}x"
+
+        def target(what: str, case: str, ref: str, limit: float | None, floor: str) -> None:
+            targets.append((kind, what, run.ratio(case, ref), run.spread(case, ref), limit, floor))
+
         if kind == "gpt2 sdpa":
-            maps = t["maps, sdpa='weights'"]
-            targets.append((kind, "maps (sdpa='weights') / peer", maps / peer, 1.00,
-                            f"plain fused forward, nothing kept: {t['plain'] / peer:.2f}x peer"))
-            targets.append((kind, "maps (default, bit-identical) / peer", t["maps"] / peer, None,
-                            f"plain + recompute 6 maps {t['floor: plain + recompute 6 maps'] / peer:.2f}x peer"))
+            target("maps (sdpa='weights') / peer", "maps, sdpa='weights'", peer_key, 1.00,
+                   f"plain fused forward, nothing kept: {run.ratio('plain', peer_key):.2f}x peer")
+            target("maps (default, bit-identical) / peer", "maps", peer_key, None,
+                   f"plain + recompute 6 maps {run.ratio('floor: plain + recompute 6 maps', peer_key):.2f}x peer")
             for label in ("stats", "stats, sdpa='weights'"):
-                targets.append((kind, f"{label} / plain", t[label] / t["plain"], 1.20, floor_scores))
-            targets.append((kind, "stats / maps (default)", t["stats"] / t["maps"], 1.0, "-"))
-            targets.append((kind, "stats / maps (sdpa='weights')", t["stats, sdpa='weights'"] / maps, 1.0, "-"))
+                target(f"{label} / plain", label, "plain", 1.20, floor_scores)
+            target("stats / maps (default)", "stats", "maps", 1.0, "-")
+            target("stats / maps (sdpa='weights')", "stats, sdpa='weights'", "maps, sdpa='weights'", 1.0, "-")
         else:
-            targets.append((kind, "maps / peer", t["maps"] / peer, 1.03,
-                            f"1.00x (the weights exist); with capture's idle hooks and mode "
-                            f"{t['floor: peer + idle hooks and mode'] / peer:.2f}x"))
-            targets.append((kind, "maps, residual=False / peer", t["maps, residual=False"] / peer, None,
-                            "like for like: the peer keeps no residual-stream norms"))
-            targets.append((kind, "stats / plain", t["stats"] / t["plain"], 1.20,
-                            floor_scores or f"plain + stats of 6 maps in memory {floor_stats:.2f}x"))
-            targets.append((kind, "stats / maps", t["stats"] / t["maps"], 1.0, "-"))
+            target("maps / peer", "maps", peer_key, 1.03,
+                   f"1.00x (the weights exist); with capture's idle hooks and mode "
+                   f"{run.ratio('floor: peer + idle hooks and mode', peer_key):.2f}x")
+            target("maps, residual=False / peer", "maps, residual=False", peer_key, None,
+                   "like for like: the peer keeps no residual-stream norms")
+            target("stats / plain", "stats", "plain", 1.20,
+                   floor_scores or f"plain + stats of 6 maps in memory {floor_stats:.2f}x")
+            target("stats / maps", "stats", "maps", 1.0, "-")
         if not a.no_memory:
             peak, kept = memory(kind, "maps", a.batch, a.seq)
             _, kept_s = memory(kind, "stats", a.batch, a.seq)
             print(f"  memory: maps kept {_size(kept)}, peak RSS +{_size(max(peak, 0))}; stats kept {_size(kept_s)}")
-            targets.append((kind, "maps peak extra RSS / kept bytes", peak / kept, 1.20, "1.00x (the maps themselves)"))
-    print(f"\n{'model':<11} {'target':<38} {'measured':>9} {'target':>8}  {'verdict':<8} floor (same run)")
-    for kind, what, ratio, limit, floor in targets:
+            targets.append((kind, "maps peak extra RSS / kept bytes", peak / kept, "-", 1.20,
+                            "1.00x (the maps themselves)"))
+    print(f"\nratios: median over the {a.repeats} rounds of the two cases' times in the same round; quartiles beside")
+    print(f"{'model':<11} {'target':<38} {'measured':>9} {'quartiles':>10} {'target':>8}  {'verdict':<8} "
+          "floor (same run)")
+    for kind, what, ratio, spread, limit, floor in targets:
         if limit is None:
-            print(f"{kind:<11} {what:<38} {ratio:>8.3f}x {'-':>8}  {'(info)':<8} {floor}")
+            print(f"{kind:<11} {what:<38} {ratio:>8.3f}x {spread:>10} {'-':>8}  {'(info)':<8} {floor}")
             continue
         ok = ratio < limit if what.startswith("stats /") and "plain" not in what else ratio <= limit
-        print(f"{kind:<11} {what:<38} {ratio:>8.3f}x {'<=' if 'plain' in what or 'peer' in what or 'RSS' in what else '<'}{limit:>5.2f}x"
+        print(f"{kind:<11} {what:<38} {ratio:>8.3f}x {spread:>10} "
+              f"{'<=' if 'plain' in what or 'peer' in what or 'RSS' in what else '<'}{limit:>5.2f}x"
               f"  {_verdict(ok):<8} {floor}")
     print("peak RSS: allocator noise of a few MiB; kept: bytes held by the records (exact)")
 
