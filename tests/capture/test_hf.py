@@ -6,6 +6,7 @@ Reference: HF's own eager attention with ``output_attentions=True`` on a model w
 from __future__ import annotations
 
 import copy
+import importlib
 
 import numpy as np
 import pytest
@@ -342,3 +343,103 @@ def test_padded_gqa_decoding_stitches_into_the_full_pass(impl):
     for rec in full.attention:
         rows = rec.allowed_full().any(axis=-1)  # the padded row's first queries see no key
         np.testing.assert_allclose(stitched[rec.name].weights[rows], rec.weights[rows], atol=1e-5)
+
+
+def _weights_option_cases():
+    return [(kind, f) for kind, table in (("decoder", DECODERS), ("encoder", ENCODERS), ("seq2seq", SEQ2SEQ))
+            for f in sorted(table) if f not in EAGER_ONLY]
+
+
+def _padded_inputs(kind, family):
+    """One right-padded batch for a model of *kind* (no query row is left without a key)."""
+    b = 2
+    torch.manual_seed(1)
+    mask = torch.ones(b, 8, dtype=torch.long)
+    mask[1, 6:] = 0
+    if kind != "seq2seq":
+        return {"input_ids": torch.randint(3, 64, (b, 8)), "attention_mask": mask}
+    tgt = {"decoder_input_ids": torch.randint(3, 64, (b, 5))}
+    if family == "whisper":
+        return {"input_features": torch.randn(b, 8, 16), **tgt}  # (B, mel bins, 2 * source positions)
+    return {"input_ids": torch.randint(3, 64, (b, 8)), "attention_mask": mask, **tgt}
+
+
+def _eager_maps(kind, out):
+    """HF eager output_attentions in capture's call order (encoder, then each decoder layer's self and cross)."""
+    if kind != "seq2seq":
+        return list(out.attentions)
+    maps = list(out.encoder_attentions)
+    for self_w, cross_w in zip(out.decoder_attentions, out.cross_attentions):
+        maps += [self_w, cross_w]
+    return maps
+
+
+def _module_outputs(model, names, run):
+    """The output (its first tensor) of each module named in *names* while *run()* runs, and the model's own."""
+    modules = dict(model.named_modules())
+    outs = {}
+
+    def keep(name):
+        def hook(module, args, out):
+            outs[name] = (out[0] if isinstance(out, tuple) else out).detach().clone()
+        return hook
+
+    handles = [modules[n].register_forward_hook(keep(n)) for n in names]
+    try:
+        outs[""] = run()[0].detach().clone()  # logits or the last hidden state
+    finally:
+        for h in handles:
+            h.remove()
+    return outs
+
+
+def _reference_means(w, offset):
+    """Per-head means of the statistics of HF eager weights, in float64 numpy and scipy; the allowed keys are those
+    the eager softmax gave a weight above zero (a key its mask forbids gets exactly zero)."""
+    from scipy.special import entr
+
+    w = w.double().numpy()  # (B, H, Tq, Tk)
+    b, h, tq, tk = w.shape
+    ok = w > 0
+    assert ok.any(-1).all()  # right padding leaves every query a key
+    dist = np.abs(np.arange(tq)[:, None] + offset - np.arange(tk)[None, :])  # |i - k| on absolute positions
+    per_row = {"entropy": entr(w).sum(-1), "max_weight": w.max(-1),
+               "sink_mass": np.take_along_axis(w, ok.argmax(-1)[..., None], -1)[..., 0],
+               "mean_distance": (w * dist).sum(-1), "leak_mass": np.zeros((b, h, tq))}
+    return {k: v.mean(axis=(0, 2)) for k, v in per_row.items()}
+
+
+@pytest.mark.parametrize(("kind", "family"), _weights_option_cases())
+def test_sdpa_weights_option_on_every_family_with_an_sdpa_path(kind, family, monkeypatch):
+    """capture(sdpa="weights") on transformers' own sdpa attention (padding masks, GQA, sliding windows, cross-
+    attention): every call is computed from the weights (the fused kernel never runs), the model's output differs
+    from the plain model's by float rounding only, the maps equal HF eager output_attentions of the same weights,
+    and keep="stats" equals statistics of those eager maps."""
+    sdpa_path = importlib.import_module("attnscope.capture.paths.sdpa")
+    computed = []
+    real = sdpa_path._from_weights
+    monkeypatch.setattr(sdpa_path, "_from_weights", lambda *a: computed.append(1) or real(*a))
+    table = {"decoder": DECODERS, "encoder": ENCODERS, "seq2seq": SEQ2SEQ}[kind]
+    model, ref = _twins(*table[family], "sdpa")
+    inputs = _padded_inputs(kind, family)
+    with torch.no_grad():
+        ref_maps = _eager_maps(kind, ref(**inputs, output_attentions=True))  # reference: HF eager
+        with attnscope.capture(model, sdpa="weights", keep="stats") as st:
+            model(**inputs)
+        names = sorted({r.name for r in st.attention})
+        plain = _module_outputs(model, names, lambda: model(**inputs))  # each attention module's output
+        with attnscope.capture(model, sdpa="weights") as cap:
+            got = _module_outputs(model, names, lambda: model(**inputs))
+    for name in ["", *names]:
+        # another summation order than the fused kernel's: float32 rounding, far below what a decision would notice
+        diff = (got[name] - plain[name]).abs().max().item()
+        assert diff <= 1e-5 * plain[name].abs().max().item(), (family, name, diff)
+    assert len(cap.attention) == len(st.attention) == len(ref_maps)
+    assert all(r.source == "sdpa" for r in cap.attention), [r.source for r in cap.attention]
+    assert len(computed) == 2 * len(ref_maps)  # both captures computed every call from its weights
+    for rec, srec, ref_w in zip(cap.attention, st.attention, ref_maps):
+        _close_on_allowed(rec, ref_w)
+        assert srec.weights is None and (srec.name, srec.kind, srec.shape) == (rec.name, rec.kind, rec.shape)
+        means = srec.stats.means()
+        for key, val in _reference_means(ref_w, srec.query_offset).items():
+            np.testing.assert_allclose(means[key], val, rtol=1e-5, atol=1e-5, err_msg=f"{family} {rec.name} {key}")
