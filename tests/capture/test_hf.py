@@ -443,3 +443,30 @@ def test_sdpa_weights_option_on_every_family_with_an_sdpa_path(kind, family, mon
         means = srec.stats.means()
         for key, val in _reference_means(ref_w, srec.query_offset).items():
             np.testing.assert_allclose(means[key], val, rtol=1e-5, atol=1e-5, err_msg=f"{family} {rec.name} {key}")
+
+
+def _stats_cases():
+    return [(kind, f, impl) for kind, table in (("decoder", DECODERS), ("encoder", ENCODERS), ("seq2seq", SEQ2SEQ))
+            for f, impl in _cases(table)]
+
+
+@pytest.mark.parametrize(("kind", "family", "impl"), _stats_cases())
+def test_statistics_of_every_family_equal_scipy_on_hf_eager_maps(kind, family, impl):
+    """keep="stats" (no map kept; on sdpa models the fused call runs untouched and the statistics are reduced from
+    the scores beside it, on eager models from the model's own softmax and its scores) against float64 statistics
+    of HF eager output_attentions of the same weights, call by call."""
+    table = {"decoder": DECODERS, "encoder": ENCODERS, "seq2seq": SEQ2SEQ}[kind]
+    model, ref = _twins(*table[family], impl)
+    inputs = _padded_inputs(kind, family)
+    with torch.no_grad():
+        ref_maps = _eager_maps(kind, ref(**inputs, output_attentions=True))  # reference: HF eager
+        plain = model(**inputs)[0]
+        with attnscope.capture(model, keep="stats") as st:
+            got = model(**inputs)[0]
+    assert torch.equal(got, plain)  # the model's own computation is left alone
+    assert len(st.attention) == len(ref_maps)
+    for rec, ref_w in zip(st.attention, ref_maps):
+        assert rec.weights is None and rec.shape == tuple(ref_w.shape), (family, rec.name, rec.shape)
+        means = rec.stats.means()
+        for key, val in _reference_means(ref_w, rec.query_offset).items():
+            np.testing.assert_allclose(means[key], val, rtol=1e-5, atol=1e-5, err_msg=f"{family} {rec.name} {key}")
