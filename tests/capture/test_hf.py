@@ -13,6 +13,7 @@ import pytest
 import torch
 
 import attnscope
+from reference_stats import reference_means  # tests/capture/reference_stats.py
 
 transformers = pytest.importorskip("transformers")
 
@@ -393,22 +394,6 @@ def _module_outputs(model, names, run):
     return outs
 
 
-def _reference_means(w, offset):
-    """Per-head means of the statistics of HF eager weights, in float64 numpy and scipy; the allowed keys are those
-    the eager softmax gave a weight above zero (a key its mask forbids gets exactly zero)."""
-    from scipy.special import entr
-
-    w = w.double().numpy()  # (B, H, Tq, Tk)
-    b, h, tq, tk = w.shape
-    ok = w > 0
-    assert ok.any(-1).all()  # right padding leaves every query a key
-    dist = np.abs(np.arange(tq)[:, None] + offset - np.arange(tk)[None, :])  # |i - k| on absolute positions
-    per_row = {"entropy": entr(w).sum(-1), "max_weight": w.max(-1),
-               "sink_mass": np.take_along_axis(w, ok.argmax(-1)[..., None], -1)[..., 0],
-               "mean_distance": (w * dist).sum(-1), "leak_mass": np.zeros((b, h, tq))}
-    return {k: v.mean(axis=(0, 2)) for k, v in per_row.items()}
-
-
 @pytest.mark.parametrize(("kind", "family"), _weights_option_cases())
 def test_sdpa_weights_option_on_every_family_with_an_sdpa_path(kind, family, monkeypatch):
     """capture(sdpa="weights") on transformers' own sdpa attention (padding masks, GQA, sliding windows, cross-
@@ -441,7 +426,7 @@ def test_sdpa_weights_option_on_every_family_with_an_sdpa_path(kind, family, mon
         _close_on_allowed(rec, ref_w)
         assert srec.weights is None and (srec.name, srec.kind, srec.shape) == (rec.name, rec.kind, rec.shape)
         means = srec.stats.means()
-        for key, val in _reference_means(ref_w, srec.query_offset).items():
+        for key, val in reference_means(ref_w, srec.query_offset).items():
             np.testing.assert_allclose(means[key], val, rtol=1e-5, atol=1e-5, err_msg=f"{family} {rec.name} {key}")
 
 
@@ -468,5 +453,5 @@ def test_statistics_of_every_family_equal_scipy_on_hf_eager_maps(kind, family, i
     for rec, ref_w in zip(st.attention, ref_maps):
         assert rec.weights is None and rec.shape == tuple(ref_w.shape), (family, rec.name, rec.shape)
         means = rec.stats.means()
-        for key, val in _reference_means(ref_w, rec.query_offset).items():
+        for key, val in reference_means(ref_w, rec.query_offset).items():
             np.testing.assert_allclose(means[key], val, rtol=1e-5, atol=1e-5, err_msg=f"{family} {rec.name} {key}")

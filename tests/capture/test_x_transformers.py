@@ -15,6 +15,7 @@ import pytest
 import torch
 
 import attnscope
+from reference_stats import reference_means  # tests/capture/reference_stats.py
 
 xt = pytest.importorskip("x_transformers")
 
@@ -61,6 +62,33 @@ def test_decoder_and_encoder_weights_equal_the_library_maps(flash, kind):
         assert rec.causal == (kind == "decoder")  # the library's Decoder is causal, its Encoder is not
         np.testing.assert_allclose(rec.weights, ref.numpy(), atol=1e-5)  # reference: the library's own maps
         assert not rec.allowed_full()[1, :, :, 5:].any()  # padded keys are forbidden to every query
+
+
+@pytest.mark.parametrize(("flash", "sdpa"), [(False, "beside"), (True, "beside"), (True, "weights")])
+@pytest.mark.parametrize("kind", ["decoder", "encoder"])
+def test_statistics_and_the_weights_option_against_the_library_maps(flash, sdpa, kind):
+    """keep="stats" (and, on the flash path, sdpa="weights": attention computed from the weights capture builds)
+    against float64 statistics of the library's own maps; the weights option's output against the plain model's."""
+    make = (lambda f: lm(f)) if kind == "decoder" else (lambda f: lm(f, xt.Encoder))
+    model = make(flash)
+    ids = torch.randint(0, V, (2, 7))
+    mask = torch.tensor([[True] * 7, [True] * 5 + [False] * 2])  # key padding on the second row
+    _, maps = twin_maps(model, flash, make, ids, mask=mask)  # reference: x-transformers' own maps
+    with torch.no_grad(), pytest.warns(attnscope.AttnscopeWarning, match="found no transformer blocks"):
+        plain = model(ids, mask=mask)
+        with attnscope.capture(model, keep="stats", sdpa=sdpa) as cap:
+            out = model(ids, mask=mask)
+    if sdpa == "beside":
+        torch.testing.assert_close(out, plain, atol=0, rtol=0)  # the model's own computation is left alone
+    else:  # another summation order than the fused kernel's: float32 rounding
+        assert (out - plain).abs().max().item() <= 1e-5 * plain.abs().max().item()
+        assert not torch.equal(out, plain)  # the output did come from capture's weights
+    assert len(cap.attention) == len(maps) == 2
+    for rec, ref in zip(cap.attention, maps):
+        assert rec.weights is None and rec.source == ("sdpa" if flash else "softmax")
+        means = rec.stats.means()
+        for key, val in reference_means(ref, rec.query_offset).items():
+            np.testing.assert_allclose(means[key], val, rtol=1e-5, atol=1e-5, err_msg=f"{rec.name} {key}")
 
 
 @pytest.mark.parametrize("flash", [False, True])
