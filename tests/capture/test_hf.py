@@ -294,9 +294,7 @@ def test_encoder_decoder_families_prefill_and_cached_step(family, impl):
         ref_out = ref(**src, decoder_input_ids=tgt, output_attentions=True, use_cache=True)  # reference: HF eager
         with attnscope.capture(model) as cap:
             out = model(**src, decoder_input_ids=tgt, use_cache=True)
-    expected = list(ref_out.encoder_attentions)
-    for self_w, cross_w in zip(ref_out.decoder_attentions, ref_out.cross_attentions):
-        expected += [self_w, cross_w]
+    expected = _eager_maps("seq2seq", ref_out)
     kinds = ["self"] * len(ref_out.encoder_attentions) + ["self", "cross"] * len(ref_out.decoder_attentions)
     assert [r.kind for r in cap.attention] == kinds
     for i, (rec, ref_w) in enumerate(zip(cap.attention, expected)):
@@ -346,9 +344,15 @@ def test_padded_gqa_decoding_stitches_into_the_full_pass(impl):
         np.testing.assert_allclose(stitched[rec.name].weights[rows], rec.weights[rows], atol=1e-5)
 
 
+TABLES = {"decoder": DECODERS, "encoder": ENCODERS, "seq2seq": SEQ2SEQ}
+
+
+def _stats_cases():
+    return [(kind, f, impl) for kind, table in TABLES.items() for f, impl in _cases(table)]
+
+
 def _weights_option_cases():
-    return [(kind, f) for kind, table in (("decoder", DECODERS), ("encoder", ENCODERS), ("seq2seq", SEQ2SEQ))
-            for f in sorted(table) if f not in EAGER_ONLY]
+    return [(kind, f) for kind, f, impl in _stats_cases() if impl == "sdpa"]
 
 
 def _padded_inputs(kind, family):
@@ -404,8 +408,7 @@ def test_sdpa_weights_option_on_every_family_with_an_sdpa_path(kind, family, mon
     computed = []
     real = sdpa_path._from_weights
     monkeypatch.setattr(sdpa_path, "_from_weights", lambda *a: computed.append(1) or real(*a))
-    table = {"decoder": DECODERS, "encoder": ENCODERS, "seq2seq": SEQ2SEQ}[kind]
-    model, ref = _twins(*table[family], "sdpa")
+    model, ref = _twins(*TABLES[kind][family], "sdpa")
     inputs = _padded_inputs(kind, family)
     with torch.no_grad():
         ref_maps = _eager_maps(kind, ref(**inputs, output_attentions=True))  # reference: HF eager
@@ -430,18 +433,12 @@ def test_sdpa_weights_option_on_every_family_with_an_sdpa_path(kind, family, mon
             np.testing.assert_allclose(means[key], val, rtol=1e-5, atol=1e-5, err_msg=f"{family} {rec.name} {key}")
 
 
-def _stats_cases():
-    return [(kind, f, impl) for kind, table in (("decoder", DECODERS), ("encoder", ENCODERS), ("seq2seq", SEQ2SEQ))
-            for f, impl in _cases(table)]
-
-
 @pytest.mark.parametrize(("kind", "family", "impl"), _stats_cases())
 def test_statistics_of_every_family_equal_scipy_on_hf_eager_maps(kind, family, impl):
     """keep="stats" (no map kept; on sdpa models the fused call runs untouched and the statistics are reduced from
     the scores beside it, on eager models from the model's own softmax and its scores) against float64 statistics
     of HF eager output_attentions of the same weights, call by call."""
-    table = {"decoder": DECODERS, "encoder": ENCODERS, "seq2seq": SEQ2SEQ}[kind]
-    model, ref = _twins(*table[family], impl)
+    model, ref = _twins(*TABLES[kind][family], impl)
     inputs = _padded_inputs(kind, family)
     with torch.no_grad():
         ref_maps = _eager_maps(kind, ref(**inputs, output_attentions=True))  # reference: HF eager
