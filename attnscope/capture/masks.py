@@ -213,20 +213,22 @@ def _empty_rows(m: torch.Tensor | None, is_causal: bool, tq: int, tk: int) -> to
 
 def sdpa_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | None = None,
                  is_causal: bool = False, scale: float | None = None, enable_gqa: bool = False,
-                 with_scores: bool = False):
+                 with_scores: bool = False, plan=None):
     """softmax(Q Kᵀ · scale + mask) with the semantics of ``F.scaled_dot_product_attention``, in float32.
 
     ``q`` is ``(B, Hq, Tq, E)``, ``k`` is ``(B, Hk, Tk, E)``; with ``enable_gqa`` each key head serves
     ``Hq // Hk`` consecutive query heads. Rows with no allowed key are all zeros (the fused kernels return a
     zero output there). Returns ``(B, Hq, Tq, Tk)``, or ``(weights, masked scores)`` with ``with_scores``
-    (for statistics that take the entropy from the scores, :func:`attnscope.stats.head_sums`).
+    (for statistics that take the entropy from the scores, :func:`attnscope.stats.head_sums`). A bool or no
+    mask is computed in row blocks (:func:`blocked_weights`, with *plan*, the call's
+    :class:`~attnscope.stats.ScorePlan` when the caller keeps it).
     """
     q = q.detach().float()
     k = k.detach().float()
     if enable_gqa and k.size(-3) != q.size(-3):
         k = k.repeat_interleave(q.size(-3) // k.size(-3), dim=-3)
     if not with_scores and (attn_mask is None or attn_mask.dtype == torch.bool):
-        blocked = blocked_weights(q, k, attn_mask, is_causal, scale)
+        blocked = blocked_weights(q, k, attn_mask, is_causal, scale, plan=plan)
         if blocked is not None:
             return blocked[0]
     tq, tk = q.size(-2), k.size(-2)
@@ -256,62 +258,64 @@ BLOCKED_MIN_SKIP = 0.1
 
 
 def blocked_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | None, is_causal: bool,
-                    scale: float | None = None, v: torch.Tensor | None = None):
+                    scale: float | None = None, v: torch.Tensor | None = None, plan=None):
     """softmax(Q Kᵀ · scale) under a mask that only allows or forbids keys, computing only the keys some query of
     a block of rows may see (:func:`attnscope.stats.row_spans`): a causal mask skips about 40 % of the products at
     T=256 and more at longer T. Equal to :func:`sdpa_weights` up to float rounding (a forbidden key's weight is
     exactly 0 either way; only the order of a row's sum can differ).
 
     ``q`` ``(B, H, Tq, E)`` and ``k`` ``(B, H, Tk, E)`` float32 (one key head per query head), ``attn_mask`` bool
-    (True: may attend) broadcastable to ``(B, H, Tq, Tk)`` or None, ``v`` ``(B, H, Tk, Ev)`` or None. Returns
-    ``(weights (B, H, Tq, Tk), output (B, H, Tq, Ev) in v's dtype, or None)``, rows with no allowed key all zero
-    (as the fused kernels give), or None when the blocks would leave out less than :data:`BLOCKED_MIN_SKIP` of
-    the map (no mask, a padding mask alone) or the shapes are not the plain 4-D ones.
+    (True: may attend) broadcastable to ``(B, H, Tq, Tk)`` or None, ``v`` ``(B, H, Tk, Ev)`` or None. The row
+    blocks, the shared mask's bias and the empty rows are those of the :class:`~attnscope.stats.ScorePlan` of the
+    call's allowed keys: *plan* when the caller keeps it for these shapes (capture's recorder keeps one per mask
+    tensor, so the layers of a forward share it), else worked out here from ``attn_mask`` and ``is_causal``.
+    Returns ``(weights (B, H, Tq, Tk), output (B, H, Tq, Ev) in v's dtype, or None)``, rows with no allowed key all
+    zero (as the fused kernels give), or None when the blocks would leave out less than :data:`BLOCKED_MIN_SKIP`
+    of the map (no mask, a padding mask alone) or the shapes are not the plain 4-D ones.
     """
-    from attnscope.stats import row_spans  # stats imports nothing of capture; import here keeps masks light
+    from attnscope.stats import flat_maps, score_plan  # stats imports nothing of capture; here keeps masks light
 
     if q.dim() != 4 or k.dim() != 4 or q.shape[:2] != k.shape[:2] or q.dtype != torch.float32 \
             or k.dtype != torch.float32:
         return None
     b, h, tq, e = q.shape
     tk = k.shape[-2]
-    a = sdpa_allowed(attn_mask, is_causal, tq, tk)
-    if a is None or a.dim() > 4:
-        return None
-    while a.dim() < 4:
-        a = a.unsqueeze(0)
-    if a.shape[0] not in (1, b) or a.shape[1] not in (1, h):
-        return None  # broadcasts to more maps than the call has
-    a = a.expand(a.shape[0], a.shape[1], tq, tk)  # (B or 1, H or 1, Tq, Tk)
-    spans = row_spans(a.any(dim=1).any(dim=0), tq, tk)
-    if sum((r1 - r0) * (k1 - k0) for r0, r1, k0, k1 in spans) > (1 - BLOCKED_MIN_SKIP) * tq * tk:
+    if plan is None:
+        a = sdpa_allowed(attn_mask, is_causal, tq, tk)
+        if a is None or a.dim() > 4:
+            return None
+        while a.dim() < 4:
+            a = a.unsqueeze(0)
+        if a.shape[0] not in (1, b) or a.shape[1] not in (1, h):
+            return None  # broadcasts to more maps than the call has
+        plan = score_plan(a, b, h, tq, tk)
+    elif plan.shape != (b, h, tq, tk):
+        raise ValueError(f"blocked_weights: the plan is for scores {plan.shape}, not {(b, h, tq, tk)}")
+    a = plan.allowed  # (B or 1, H or 1, Tq, Tk) bool, or None
+    if a is None or sum((r1 - r0) * (k1 - k0) for r0, r1, k0, k1 in plan.spans) > (1 - BLOCKED_MIN_SKIP) * tq * tk:
         return None
     n = b * h
     scale = 1.0 / math.sqrt(e) if scale is None else scale
-    q3, k3 = (q * scale).reshape(n, tq, e), k.reshape(n, tk, e)  # scaling q is the cheaper side
-    shared = a.shape[0] == 1 and a.shape[1] == 1
-    bias = None  # (Tq, Tk)  a mask shared by every map as -inf where forbidden (causal alone: the cached one)
-    if shared:
-        bias = _causal_bias(tq, tk) if attn_mask is None else torch.zeros(tq, tk).masked_fill_(~a[0, 0],
-                                                                                            float("-inf"))
+    q3, k3 = flat_maps(q, "q"), flat_maps(k, "k")  # (B*H, T, E); the scale is the product's alpha: no scaled q
     w = torch.zeros(b, h, tq, tk)  # keys no row of a block sees keep weight 0
     w3 = w.view(n, tq, tk)
-    v3 = None if v is None else v.detach().reshape(n, tk, v.shape[-1])  # (B*H, Tk, Ev)
+    v3 = None if v is None else flat_maps(v.detach(), "v")  # (B*H, Tk, Ev)
     out = None if v is None else torch.zeros(b, h, tq, v.shape[-1], dtype=v.dtype)
     out3 = None if out is None else out.view(n, tq, -1)
-    for r0, r1, k0, k1 in spans:
-        sc = torch.bmm(q3[:, r0:r1], k3[:, k0:k1].transpose(1, 2))  # (n, r, K)
-        if bias is not None:
-            sc.add_(bias[r0:r1, k0:k1])
+    for (r0, r1, k0, k1), bb in zip(plan.spans, plan.bias_blocks):
+        kb = k3[:, k0:k1].transpose(1, 2)  # (n, E, K)
+        if bb is not None:  # a mask every map shares: its lowest-float bias, added as the product is made
+            sc = torch.baddbmm(bb, q3[:, r0:r1], kb, alpha=scale)  # (n, r, K)
         else:
+            sc = torch.empty(n, r1 - r0, k1 - k0)
+            torch.baddbmm(sc, q3[:, r0:r1], kb, beta=0, alpha=scale, out=sc)  # (n, r, K)
             sc.view(b, h, r1 - r0, k1 - k0).masked_fill_(~a[:, :, r0:r1, k0:k1], float("-inf"))
         torch.softmax(sc, dim=-1, out=sc)  # in place
         w3[:, r0:r1, k0:k1] = sc
         if out3 is not None:
             out3[:, r0:r1] = torch.bmm(sc.to(v3.dtype), v3[:, k0:k1])  # (n, r, Ev)
-    empty = ~a.any(dim=-1, keepdim=True)  # (B or 1, H or 1, Tq, 1)  rows no key reaches: softmax gave NaN
-    if bool(empty.any()):
-        w.masked_fill_(empty, 0.0)
+    if plan.any_empty:  # rows no key reaches: softmax gave NaN (or spread the lowest float evenly)
+        w.masked_fill_(plan.empty.unsqueeze(-1), 0.0)
         if out is not None:
-            out.masked_fill_(empty, 0.0)
+            out.masked_fill_(plan.empty.unsqueeze(-1), 0.0)
     return w, out

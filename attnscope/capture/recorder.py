@@ -250,7 +250,7 @@ class Recorder:
         return self.heads
 
     def record(self, frame: Frame, kind: str, shape: tuple[int, int, int, int], heads: tuple[int, ...],
-               allowed: torch.Tensor | None, causal: bool, source: str, offset: int, compute: Compute,
+               allowed: torch.Tensor | None, causal: bool, source: str, offset: int, compute: Compute | None,
                replace_at: int | None = None, builds: bool = False, scores: torch.Tensor | None = None,
                scored: Callable[[slice, list], tuple[torch.Tensor, torch.Tensor]] | None = None,
                sums: Callable[[list], HeadSums] | None = None) -> int:
@@ -264,7 +264,7 @@ class Recorder:
         from them without a logarithm per weight (:func:`~attnscope.stats.head_sums`); ``scored`` is a *compute*
         that builds ``(weights, masked scores)`` for the same purpose (a recomputation). ``sums(heads)`` reduces
         the call to statistics without forming its map (:func:`~attnscope.stats.score_sums`); ``keep="stats"``
-        uses it when given.
+        uses it when given; *compute* may then be None (a call reduced only to statistics, never to maps).
         """
         b, _, tq, tk = shape
         target = frame.target()
@@ -272,6 +272,9 @@ class Recorder:
         if allowed is not None and allowed.shape[1] > 1:
             allowed = allowed[:, list(heads)]
         per_item = len(heads) * tq * tk * 4  # float32 bytes of one batch item's kept map
+        if compute is None and (self.keep == "maps" or sums is None):  # a path's mistake, never the user's
+            raise ValueError(f"record: the call of '{target.name}' came with neither a way to build its maps "
+                             f"nor its statistics (keep={self.keep!r})")
         if self.keep == "maps":
             size = b * per_item
             if replace_at is None and self.counters.kept_bytes + size > self.max_bytes:

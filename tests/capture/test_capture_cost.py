@@ -116,14 +116,19 @@ def test_weights_changed_in_place_after_capture_took_them_warn():
 
 def test_sdpa_weights_mode_output_differs_from_the_plain_model_by_float_rounding_only(monkeypatch):
     monkeypatch.setattr(attnscope.stats, "ROW_BLOCK_MIN", 8)  # causal calls built in row blocks (masks.blocked_weights)
+    plans, real_plan = [], attnscope.stats.score_plan
+    monkeypatch.setattr(attnscope.stats, "score_plan", lambda *a: plans.append(a[1:]) or real_plan(*a))
     model = gpt2("sdpa")
     ids = torch.randint(0, 50, (3, 40))
     with torch.no_grad():
         plain = model(ids).last_hidden_state
         with attnscope.capture(model) as beside:
             same = model(ids).last_hidden_state
+        # the layers share one causal mask: its row blocks are worked out once per forward, not once per layer
+        assert len(beside.attention) > 1 and plans == [(3, model.config.n_head, 40, 40)]
         with attnscope.capture(model, sdpa="weights") as once:
             got = model(ids).last_hidden_state
+        assert len(plans) == 2
         eager = gpt2("eager")
         theirs = eager(ids, output_attentions=True).attentions
     assert torch.equal(same, plain)  # the default leaves the fused kernel untouched
@@ -386,6 +391,36 @@ def test_statistics_from_scores_without_a_map_equal_brute_force(monkeypatch, cas
     assert got["leak_mass"].tolist() == [0.0] * h
 
 
+def test_inputs_in_the_transposed_layout_of_hf_projections_give_the_same_statistics_and_weights(monkeypatch):
+    """Queries, keys and values as HF transformers hands them to attention: ``(B, T, H, E)`` projections
+    transposed to ``(B, H, T, E)``, whose batch and head axes cannot be merged without a copy. score_sums and
+    blocked_weights copy them into memory the thread keeps; two calls in a row with different inputs must each
+    give what the independent float64 softmax(Q Kᵀ·scale + causal mask) gives (a copy left over from the
+    first call would show in the second)."""
+    from attnscope.capture import masks
+
+    monkeypatch.setattr(attnscope.stats, "ROW_BLOCK_MIN", 3)  # row blocks, so blocked_weights skips some keys
+    b, h, t, e = 2, 3, 11, 4
+    allowed = torch.ones(t, t, dtype=torch.bool).tril()[None, None]
+    for seed in (4, 5):
+        torch.manual_seed(seed)
+        qkv = torch.randn(b, t, 3 * h * e) * 2  # one projection of every head, as GPT-2's c_attn makes it
+        q, k, v = (x.view(b, t, h, e).transpose(1, 2) for x in qkv.split(h * e, dim=2))  # (B, H, T, E) views
+        with pytest.raises(RuntimeError):
+            q.view(b * h, t, e)  # the layout this test is about: no view merges batch and heads
+        w = _independent_weights(q, k, allowed.expand(b, h, t, t), 0.5)
+        got, out = attnscope.stats.score_sums(q, k, allowed, 0.5, v=v)
+        for key, val in brute_means(w, allowed.numpy()).items():
+            np.testing.assert_allclose(got.means()[key], val, rtol=1e-6, atol=1e-6, err_msg=key)
+        np.testing.assert_allclose(out.numpy(), w @ v.double().numpy(), rtol=1e-5, atol=1e-6)  # weights @ V
+        bw, bout = masks.blocked_weights(q, k, allowed, False, 0.5, v=v)
+        np.testing.assert_allclose(bw.numpy(), w, rtol=1e-5, atol=1e-6)
+        np.testing.assert_allclose(bout.numpy(), w @ v.double().numpy(), rtol=1e-5, atol=1e-6)
+    # a layout that merges is read in place, not copied
+    c = torch.randn(b, h, t, e)
+    assert attnscope.stats.flat_maps(c, "q").data_ptr() == c.data_ptr()
+
+
 def test_a_mask_edited_in_place_between_calls_is_worked_out_again():
     """The recorder keeps what score_sums works out from a mask per mask tensor, for every layer of a forward:
     an in-place edit between two calls (a new version) must not reuse it. Each call's statistics against the
@@ -473,7 +508,7 @@ def test_weights_in_row_blocks_equal_an_independent_softmax_and_skip_forbidden_b
     from attnscope.capture import masks
 
     products = []
-    real_bmm = torch.bmm
+    real_bmm, real_baddbmm = torch.bmm, torch.baddbmm
 
     def watch(a, b_, *args, **kw):
         out = real_bmm(a, b_, *args, **kw)
@@ -481,7 +516,14 @@ def test_weights_in_row_blocks_equal_an_independent_softmax_and_skip_forbidden_b
             products.append(out.numel())
         return out
 
+    def watch_add(c, a, b_, *args, **kw):
+        out = real_baddbmm(c, a, b_, *args, **kw)
+        if b_.shape[-2] == 6:
+            products.append(out.numel())
+        return out
+
     monkeypatch.setattr(masks.torch, "bmm", watch)
+    monkeypatch.setattr(masks.torch, "baddbmm", watch_add)
     torch.manual_seed(2)
     b, h, tq, tk = 2, 3, 40, 40
     if case == "decode step":
@@ -507,7 +549,15 @@ def test_weights_in_row_blocks_equal_an_independent_softmax_and_skip_forbidden_b
     np.testing.assert_allclose(w.numpy(), want, rtol=1e-5, atol=1e-6)
     np.testing.assert_allclose(out.numpy(), want @ v.double().numpy(), rtol=1e-5, atol=1e-5)  # weights @ V
     # the keys no query of a block may see are never multiplied (a decode step forbids only a few: 10 % here)
-    assert sum(products) < (0.95 if case == "decode step" else 0.8) * b * h * tq * tk
+    assert products and sum(products) < (0.95 if case == "decode step" else 0.8) * b * h * tq * tk
+    # the same blocks from a plan the caller keeps (capture's recorder keeps one per mask tensor): the mask then
+    # comes from the plan alone, none is passed
+    plan = attnscope.stats.score_plan(masks.compact(allowed, (b, h, tq, tk)), b, h, tq, tk)
+    w2, out2 = masks.blocked_weights(q, k, None, False, v=v, plan=plan)
+    np.testing.assert_allclose(w2.numpy(), want, rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(out2.numpy(), want @ v.double().numpy(), rtol=1e-5, atol=1e-5)
+    with pytest.raises(ValueError, match="plan is for"):
+        masks.blocked_weights(q[:1], k[:1], None, False, plan=plan)  # a plan made for other shapes
     # no mask, or a mask that forbids too little to skip a tenth of the map: the plain computation is kept
     assert masks.blocked_weights(q, k, None, False) is None
     assert masks.blocked_weights(q, k, torch.rand(b, 1, 1, tk) > 0.05, False) is None

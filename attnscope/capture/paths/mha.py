@@ -147,13 +147,8 @@ def _record_fused(rec: Recorder, frame: Frame, a: dict, call, sums: HeadSums | N
     allowed = _allowed(rec, a, b, h, tq, tk) if sums is None else allowed
     kind, heads = _kind(frame, a), rec.kept_heads(h, frame.target().name)
     causal = bool(a["is_causal"]) or (kind == "self" and rec.is_causal(allowed, tq, tk, 0))
-
-    def compute(sl: slice, hs: list[int]):  # maps, should a caller ask for them: softmax(Q Kᵀ/√E + mask)
-        m = None if allowed is None else allowed[sl] if allowed.shape[0] == b else allowed
-        m = m if m is None or m.shape[1] == 1 else m[:, hs]
-        return masks.sdpa_weights(q4[sl][:, hs], k4[sl][:, hs], m, False)
-
-    rec.record(frame, kind, (b, h, tq, tk), heads, allowed, causal, SOURCE, 0, compute, builds=True,
+    # keep="stats" only (the fused path is taken for nothing else): statistics, never maps
+    rec.record(frame, kind, (b, h, tq, tk), heads, allowed, causal, SOURCE, 0, None,
                sums=(lambda hs: fused_sums(rec, q4, k4, allowed, hs, 1, None, 0)) if sums is None else sums.take)
     return True
 

@@ -66,8 +66,13 @@ def on_call(rec: Recorder, func, args, kwargs):
             m = m[sl] if m.shape[0] == b else m
             m = m[:, hs] if m.shape[1] == hq else m
         kh = [h // rep for h in hs] if k4.shape[1] > 1 else [0]
+        a = allowed if allowed is None or allowed.shape[0] == 1 or sl == slice(None) else None
+        a = a if a is None or a.shape[1] == 1 or hs == list(range(hq)) else None
+        # the row blocks of a mask every piece shares are worked out once per forward (rec.score_plan)
+        plan = None if a is None or with_scores or not forbids_only else rec.score_plan(
+            a, (len(range(b)[sl]), len(hs), tq, tk))
         return masks.sdpa_weights(q4[sl][:, hs], k4[sl][:, kh], m, is_causal, p.get("scale"),
-                                  with_scores=with_scores)
+                                  with_scores=with_scores, plan=plan)
 
     causal = is_causal or (kind == "self" and rec.is_causal(allowed, tq, tk, offset))
     rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, compute, builds=True,
@@ -137,9 +142,7 @@ def _from_weights(rec: Recorder, frame, p: dict) -> torch.Tensor:
         # statistics and output from the same pieces of scores: no map, attention computed once
         sums, out = score_sums(q4, kk, allowed, p.get("scale"), offset, v=vv.expand(b, hq, tk, v4.shape[-1]),
                                plan=rec.score_plan(allowed, (b, hq, tq, tk)))
-        rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset,
-                   lambda sl, hs: masks.sdpa_weights(q4, kk, mask4, is_causal, p.get("scale"))[sl][:, hs],
-                   sums=sums.take)
+        rec.record(frame, kind, (b, hq, tq, tk), heads, allowed, causal, SOURCE, offset, None, sums=sums.take)
         return out.reshape(*q.shape[:-1], v.shape[-1])
     scores = None  # keep="stats" takes the entropy from the masked scores (no logarithm per weight)
     blocked = None
@@ -148,7 +151,8 @@ def _from_weights(rec: Recorder, frame, p: dict) -> torch.Tensor:
     elif (mask4 is None or mask4.dtype == torch.bool) and (k4.shape[1] in (1, hq) or gqa):
         # weights and output in the same row blocks, leaving out the keys the mask forbids to a whole block
         blocked = masks.blocked_weights(q4.detach().float(), kk.detach().float(), mask4, is_causal, p.get("scale"),
-                                        v=vv.expand(b, hq, tk, v4.shape[-1]))
+                                        v=vv.expand(b, hq, tk, v4.shape[-1]),
+                                        plan=None if allowed is None else rec.score_plan(allowed, (b, hq, tq, tk)))
     if blocked is not None:
         w, out = blocked  # (B, Hq, Tq, Tk) float32, (B, Hq, Tq, Ev)
     else:
