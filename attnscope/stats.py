@@ -26,8 +26,8 @@ import torch
 
 from attnscope.records import HeadSums
 
-__all__ = ["PIECE_BYTES", "ROW_BLOCK_MIN", "SCORE_PIECE_BYTES", "ScorePlan", "flat_maps", "head_sums", "row_block",
-           "row_spans", "score_plan", "score_sums"]
+__all__ = ["PIECE_BYTES", "ROW_BLOCK_MIN", "SCORE_PIECE_BYTES", "ScorePlan", "head_sums", "row_block", "row_spans",
+           "score_plan", "score_sums"]
 
 #: Bytes of float32 weights one piece holds. The piece and its one temporary of the same size are split between
 #: torch's intra-op threads and stay in cache while every statistic is taken. Measured on the reference machine
@@ -69,31 +69,6 @@ def _workspace(n: int, dtype: torch.dtype = torch.float32) -> tuple[torch.Tensor
     if pair is None or pair[0].numel() < n:
         pair = kept[dtype] = (torch.empty(n, dtype=dtype), torch.empty(n, dtype=dtype))
     return pair[0][:n], pair[1][:n]
-
-
-def flat_maps(t: torch.Tensor, slot: str) -> torch.Tensor:
-    """``(B, H, T, E)`` *t* as ``(B*H, T, E)``: a view when its strides allow, else a copy into memory this thread
-    keeps between calls under *slot* (one per input of a call: ``"q"``, ``"k"``, ``"v"``), up to
-    :data:`WORKSPACE_BYTES`; a larger input is copied to fresh memory.
-
-    HF transformers hands attention ``(B, T, H, E)`` projections transposed to ``(B, H, T, E)``, whose batch and
-    head axes cannot be merged without a copy: a fresh copy of queries and keys each layer paid a page fault per
-    4 KiB (measured on the reference machine for 8x8x256x32 inputs: score_sums 4.8 ms as-is against 3.1 ms for
-    contiguous inputs; into kept memory 3.4 ms). Not re-entrant: a caller uses the copy only until it returns."""
-    b, h, rows, cols = t.shape
-    try:
-        return t.view(b * h, rows, cols)
-    except RuntimeError:  # the strides do not allow it
-        pass
-    if t.numel() * t.element_size() > WORKSPACE_BYTES:
-        return t.reshape(b * h, rows, cols)
-    kept = getattr(_local, "inputs", None)
-    if kept is None:
-        kept = _local.inputs = {}
-    buf = kept.get((slot, t.dtype))
-    if buf is None or buf.numel() < t.numel():
-        buf = kept[(slot, t.dtype)] = torch.empty(t.numel(), dtype=t.dtype)
-    return buf[:t.numel()].view(t.shape).copy_(t).view(b * h, rows, cols)
 
 
 def head_sums(weights: torch.Tensor, allowed: torch.Tensor | None = None, query_offset: int = 0,
@@ -337,8 +312,8 @@ def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = 
     tk = k.shape[-2]
     n = b * h
     scale = 1.0 / math.sqrt(e_dim) if scale is None else scale
-    q3 = flat_maps(q, "q")  # (B*H, Tq, E)  the scale is the product's alpha: no scaled copy of q
-    k3 = flat_maps(k, "k")  # (B*H, Tk, E)
+    q3 = q.reshape(n, tq, e_dim)  # (B*H, Tq, E)  the scale is the product's alpha: no scaled copy of q
+    k3 = k.reshape(n, tk, e_dim)  # (B*H, Tk, E)
     if plan is None:
         plan = score_plan(allowed, b, h, tq, tk)
     elif plan.shape != (b, h, tq, tk):
@@ -347,7 +322,7 @@ def score_sums(q: torch.Tensor, k: torch.Tensor, allowed: torch.Tensor | None = 
     dist = _distance_matrix(tq, tk, int(query_offset))  # (Tq, Tk)
     # per row, written in place by every piece: top score, Σ w (s - m), max weight, distance, sink weight
     rows = torch.zeros(5, n, tq)  # rows of blocks that see no key stay 0
-    v3 = None if v is None else flat_maps(v.detach(), "v")  # (B*H, Tk, Ev)
+    v3 = None if v is None else v.detach().reshape(n, tk, v.shape[-1])  # (B*H, Tk, Ev)
     out3 = None if v is None else torch.zeros(n, tq, v.shape[-1], dtype=v.dtype)  # rows no key reaches stay 0
     # one pair of scratch buffers for every piece of the call: (scores, then products) and the piece's weights
     scratch, wscratch = _workspace(plan.room)

@@ -273,7 +273,7 @@ def blocked_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | 
     zero (as the fused kernels give), or None when the blocks would leave out less than :data:`BLOCKED_MIN_SKIP`
     of the map (no mask, a padding mask alone) or the shapes are not the plain 4-D ones.
     """
-    from attnscope.stats import flat_maps, score_plan  # stats imports nothing of capture; here keeps masks light
+    from attnscope.stats import score_plan  # stats imports nothing of capture; import here keeps masks light
 
     if q.dim() != 4 or k.dim() != 4 or q.shape[:2] != k.shape[:2] or q.dtype != torch.float32 \
             or k.dtype != torch.float32:
@@ -296,10 +296,10 @@ def blocked_weights(q: torch.Tensor, k: torch.Tensor, attn_mask: torch.Tensor | 
         return None
     n = b * h
     scale = 1.0 / math.sqrt(e) if scale is None else scale
-    q3, k3 = flat_maps(q, "q"), flat_maps(k, "k")  # (B*H, T, E); the scale is the product's alpha: no scaled q
+    q3, k3 = q.reshape(n, tq, e), k.reshape(n, tk, e)  # the scale is the product's alpha: no scaled copy of q
     w = torch.zeros(b, h, tq, tk)  # keys no row of a block sees keep weight 0
     w3 = w.view(n, tq, tk)
-    v3 = None if v is None else flat_maps(v.detach(), "v")  # (B*H, Tk, Ev)
+    v3 = None if v is None else v.detach().reshape(n, tk, v.shape[-1])  # (B*H, Tk, Ev)
     out = None if v is None else torch.zeros(b, h, tq, v.shape[-1], dtype=v.dtype)
     out3 = None if out is None else out.view(n, tq, -1)
     for (r0, r1, k0, k1), bb in zip(plan.spans, plan.bias_blocks):
