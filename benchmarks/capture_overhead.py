@@ -15,7 +15,7 @@ Setup: 6 layers, d_model 256, 8 heads, batch 8, T=256, eval mode under no_grad, 
 
 Timings are interleaved (every case once, then again, ...: a round) and the median of each is reported, so a
 noisy neighbour hits every case alike; every ratio is the median over rounds of the two cases' times in the same
-round, with the quartiles of those per-round ratios printed beside the targets (see :class:`Paired`).
+round, with the quartiles of those per-round ratios printed beside the targets (see ``benchmarks.scale.Paired``).
 ``--heap warm`` times the computation alone: the allocator keeps freed memory faulted in (:data:`WARM_HEAP`), so
 no case pays for fresh pages; as-is, keeping maps pays for the fresh memory it holds, as it does in a user's
 process, and which case gets fresh memory varies from run to run.
@@ -48,7 +48,6 @@ import argparse
 import contextlib
 import json
 import os
-import statistics
 import subprocess
 import sys
 import time
@@ -59,6 +58,11 @@ from torch.overrides import TorchFunctionMode
 
 import attnscope
 from attnscope.stats import head_sums
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))  # the repository: `benchmarks` imports
+if ROOT not in sys.path:
+    sys.path.insert(0, ROOT)
+from benchmarks.scale import EXACT_RSS, Paired  # noqa: E402  (shared with the users'-size benchmark)
 
 LAYERS, HEADS, D = 6, 8, 256
 
@@ -258,30 +262,6 @@ def time_cases(runs: dict, repeats: int) -> dict[str, list[float]]:
     return times
 
 
-class Paired:
-    """Times of one interleaved run: ``t[case]`` is the case's median; ``ratio(a, b)`` the median over rounds of
-    a's time over b's time in the same round, ``spread(a, b)`` the quartiles of those ratios. A round runs every
-    case within a second or two, so a slow spell of the machine that lasts longer hits both sides of each ratio;
-    a ratio of two medians taken from different rounds does not cancel it."""
-
-    def __init__(self, times: dict[str, list[float]]) -> None:
-        self.times = times
-        self.t = {k: statistics.median(v) for k, v in times.items()}
-
-    def per_round(self, a: str, b: str) -> list[float]:
-        return [x / y for x, y in zip(self.times[a], self.times[b])]
-
-    def ratio(self, a: str, b: str) -> float:
-        return statistics.median(self.per_round(a, b))
-
-    def spread(self, a: str, b: str) -> str:
-        r = sorted(self.per_round(a, b))
-        if len(r) < 4:
-            return f"{r[0]:.2f}-{r[-1]:.2f}"
-        q1, _, q3 = statistics.quantiles(r, n=4)
-        return f"{q1:.2f}-{q3:.2f}"
-
-
 def _peak_of(fn) -> int:
     """Peak RSS (bytes) reached while *fn* runs, above the RSS before it (Linux: VmHWM reset via clear_refs)."""
     def status(key: str) -> int:
@@ -303,12 +283,8 @@ def memory(kind: str, keep: str, batch: int, seq: int) -> tuple[int, int]:
             "plain = b._peak_of(lambda: b.forward(m, a));"
             f"cap = b._peak_of(lambda: b.captured(m, a, {keep!r}));"
             f"print(json.dumps([cap - plain, b.kept_bytes(b.captured(m, a, {keep!r}))]))")
-    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))  # the repository: `benchmarks` imports
-    if root not in sys.path:
-        sys.path.insert(0, root)
-    from benchmarks.scale import EXACT_RSS  # glibc returns freed blocks: RSS follows live memory
-
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=root,
+    # glibc returns freed blocks (EXACT_RSS): RSS follows live memory
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=ROOT,
                          env={**os.environ, **EXACT_RSS})
     peak, kept = json.loads(out.stdout.strip().splitlines()[-1])
     return int(peak), int(kept)

@@ -151,6 +151,30 @@ def kept_bytes(cap: Any) -> int:
     return sum(a.nbytes for r in cap.attention for a in (r.weights, r.allowed) if a is not None)
 
 
+class Paired:
+    """Times of one interleaved run: ``t[case]`` is the case's median; ``ratio(a, b)`` the median over rounds of
+    a's time over b's time in the same round, ``spread(a, b)`` the quartiles of those ratios. A round runs every
+    case within a second or two, so a slow spell of the machine that lasts longer hits both sides of each ratio;
+    a ratio of two medians taken from different rounds does not cancel it."""
+
+    def __init__(self, times: dict[str, list[float]]) -> None:
+        self.times = times
+        self.t = {k: statistics.median(v) for k, v in times.items()}
+
+    def per_round(self, a: str, b: str) -> list[float]:
+        return [x / y for x, y in zip(self.times[a], self.times[b])]
+
+    def ratio(self, a: str, b: str) -> float:
+        return statistics.median(self.per_round(a, b))
+
+    def spread(self, a: str, b: str) -> str:
+        r = sorted(self.per_round(a, b))
+        if len(r) < 4:
+            return f"{r[0]:.2f}-{r[-1]:.2f}"
+        q1, _, q3 = statistics.quantiles(r, n=4)
+        return f"{q1:.2f}-{q3:.2f}"
+
+
 CAPTURE = "capture keep='maps'"
 STATS = "capture keep='stats'"
 PEER = "peer: output_attentions=True"
@@ -302,9 +326,7 @@ def main(argv: list[str] | None = None) -> None:
             parts.append(f"peak {peaks[name] / kept:.2f}x kept, in this process (see the line below)")
         print(f"{name:<42} {med[name]:7.2f} {med[name] / fwd:7.1f} {peaks[name] / mib:8.0f} MiB  {'; '.join(parts)}")
     if CAPTURE in steps and STATS in steps:
-        def ratio(a: str, b: str) -> float:  # median over rounds of a / b in the same round
-            return statistics.median(x / y for x, y in zip(times[a], times[b]))
-
+        ratio = Paired(times).ratio  # median over rounds of a / b in the same round
         plain_of, maps_of = ratio(STATS, "plain forward"), ratio(STATS, CAPTURE)
         line = (f"capture at this size (medians of per-round ratios): keep='stats' {plain_of:.2f}x the plain forward "
                 f"(target <= 1.20x: {'met' if plain_of <= 1.2 else 'NOT met'}), {maps_of:.2f}x keep='maps' (target "
