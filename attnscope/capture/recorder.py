@@ -203,11 +203,24 @@ class Recorder:
         return self._remember(("sdpa", is_causal, shape), mask, lambda: (
             masks.compact(masks.sdpa_allowed(mask, is_causal, shape[2], shape[3]), shape), masks.only_forbids(mask)))
 
-    def score_plan(self, allowed: torch.Tensor | None, shape: tuple[int, int, int, int]) -> ScorePlan:
+    def score_plan(self, allowed: torch.Tensor | None, shape: tuple[int, int, int, int],
+                   batch: slice | None = None, heads: list[int] | None = None) -> ScorePlan:
         """:func:`~attnscope.stats.score_plan` of *allowed* for *shape* scores, worked out once per mask tensor
-        (and version): the layers of one forward reduce their scores in the same blocks."""
-        return self._remember(("score plan", shape, reductions.ROW_BLOCK_MIN, reductions.SCORE_PIECE_BYTES),
-                              allowed, lambda: reductions.score_plan(allowed, *shape))
+        (and version): the layers of one forward reduce their scores in the same blocks. *batch* and *heads*
+        take a part of a compact ``(B or 1, H or 1, Tq, Tk)`` mask (the batch items and heads a recomputation
+        builds at once), worked out once per part."""
+        part = None if batch is None else (batch.start, batch.stop, batch.step)
+        what = ("score plan", shape, reductions.ROW_BLOCK_MIN, reductions.SCORE_PIECE_BYTES, part,
+                None if heads is None else tuple(heads))
+
+        def make() -> ScorePlan:
+            a = allowed
+            if a is not None and batch is not None and a.shape[0] > 1:
+                a = a[batch]
+            if a is not None and heads is not None and a.shape[1] > 1:
+                a = a[:, heads]
+            return reductions.score_plan(a, *shape)
+        return self._remember(what, allowed, make)
 
     def mha_allowed(self, attn_mask: torch.Tensor | None, key_padding_mask: torch.Tensor | None, is_causal: bool,
                     shape: tuple[int, int, int, int]) -> torch.Tensor | None:

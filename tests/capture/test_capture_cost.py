@@ -142,6 +142,30 @@ def test_sdpa_weights_mode_output_differs_from_the_plain_model_by_float_rounding
         np.testing.assert_allclose(b.weights, a.weights, atol=1e-5)
 
 
+def test_recomputed_maps_of_a_padded_batch_work_each_parts_blocks_out_once_per_forward(monkeypatch):
+    """The default SDPA route builds kept maps a few batch items at a time; under a padding mask (another for
+    each item) each part's row blocks are worked out once per forward, not once per layer. Maps against HF eager
+    output_attentions of the same weights."""
+    from attnscope.capture import recorder
+
+    monkeypatch.setattr(attnscope.stats, "ROW_BLOCK_MIN", 8)  # row blocks that skip keys under the causal mask
+    monkeypatch.setattr(recorder, "_STATS_CHUNK_BYTES", 4 * 40 * 40 * 4)  # one batch item of 4 heads at a time
+    plans, real_plan = [], attnscope.stats.score_plan
+    monkeypatch.setattr(attnscope.stats, "score_plan", lambda *a: plans.append(a[1:]) or real_plan(*a))
+    model, eager = gpt2("sdpa"), gpt2("eager")
+    ids = torch.randint(0, 50, (3, 40))
+    pad = torch.ones(3, 40, dtype=torch.long)
+    pad[0, -6:] = 0  # right padding: item 0 is 34 tokens long
+    pad[2, -11:] = 0
+    with torch.no_grad(), attnscope.capture(model) as cap:
+        model(ids, attention_mask=pad)
+    assert len(cap.attention) == 2 and plans == [(1, 4, 40, 40)] * 3  # one per item, shared by both layers
+    with torch.no_grad():
+        theirs = eager(ids, attention_mask=pad, output_attentions=True).attentions
+    for rec, ref in zip(cap.attention, theirs):
+        np.testing.assert_allclose(rec.weights, ref.numpy(), atol=1e-5)
+
+
 @pytest.mark.parametrize("keep", ["maps", "stats"])
 def test_sdpa_weights_mode_with_gqa_and_a_padding_mask_against_math(keep, monkeypatch):
     """Output of sdpa="weights" against an independent softmax(QKᵀ/√d + mask) @ V and torch's own kernel; with

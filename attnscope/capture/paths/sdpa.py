@@ -66,11 +66,9 @@ def on_call(rec: Recorder, func, args, kwargs):
             m = m[sl] if m.shape[0] == b else m
             m = m[:, hs] if m.shape[1] == hq else m
         kh = [h // rep for h in hs] if k4.shape[1] > 1 else [0]
-        a = allowed if allowed is None or allowed.shape[0] == 1 or sl == slice(None) else None
-        a = a if a is None or a.shape[1] == 1 or hs == list(range(hq)) else None
-        # the row blocks of a mask every piece shares are worked out once per forward (rec.score_plan)
-        plan = None if a is None or with_scores or not forbids_only else rec.score_plan(
-            a, (len(range(b)[sl]), len(hs), tq, tk))
+        # the row blocks of the mask are worked out once per forward (per part of the batch), not per layer
+        plan = None if allowed is None or with_scores or not forbids_only else rec.score_plan(
+            allowed, (len(range(b)[sl]), len(hs), tq, tk), batch=sl, heads=hs)
         return masks.sdpa_weights(q4[sl][:, hs], k4[sl][:, kh], m, is_causal, p.get("scale"),
                                   with_scores=with_scores, plan=plan)
 
