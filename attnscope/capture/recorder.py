@@ -236,13 +236,16 @@ class Recorder:
     def _remember(self, what: tuple, tensors: torch.Tensor | None | tuple, make: Callable[[], Any]) -> Any:
         """``make()``, worked out once per *what* and *tensors* (one tensor or a tuple; each by its identity and
         version, None counting as one tensor): the result is kept, with the tensors, until the capture closes or
-        more than 16 are kept."""
+        more than 16 are kept; then the entries of *what*'s kind (``what[0]``) go first, so the parts of a large
+        padded batch (one score plan each) do not push out the masks every layer shares."""
         ts = tensors if isinstance(tensors, tuple) else (tensors,)
         key = (*what, *((None, None) if t is None else (id(t), t._version) for t in ts))
         hit = self._memo.get(key)
         if hit is None or any(x is not t for x, t in zip(hit[0], ts)):
             if len(self._memo) > 16:
-                self._memo.clear()
+                same = [k for k in self._memo if k[0] == what[0]]
+                for k in same or list(self._memo):
+                    del self._memo[k]
             hit = self._memo[key] = (ts, make())
         return hit[1]
 

@@ -166,6 +166,28 @@ def test_recomputed_maps_of_a_padded_batch_work_each_parts_blocks_out_once_per_f
         np.testing.assert_allclose(rec.weights, ref.numpy(), atol=1e-5)
 
 
+def test_many_parts_of_a_padded_batch_leave_the_shared_mask_worked_out_once(monkeypatch):
+    """More batch parts than the recorder keeps score plans for: the plans give way to each other, not to the
+    allowed mask every layer shares (worked out once per forward). Maps against HF eager output_attentions."""
+    from attnscope.capture import masks, recorder
+
+    monkeypatch.setattr(recorder, "_STATS_CHUNK_BYTES", 4 * 40 * 40 * 4)  # one batch item of 4 heads at a time
+    derived, real_allowed = [], masks.sdpa_allowed
+    monkeypatch.setattr(masks, "sdpa_allowed", lambda *a: derived.append(1) or real_allowed(*a))
+    model, eager = gpt2("sdpa"), gpt2("eager")
+    ids = torch.randint(0, 50, (20, 40))  # 20 parts: more than the 16 results the recorder keeps
+    pad = torch.ones(20, 40, dtype=torch.long)
+    for i in range(20):
+        pad[i, 40 - i:] = 0  # right padding, another length for every item
+    with torch.no_grad(), attnscope.capture(model) as cap:
+        model(ids, attention_mask=pad)
+    assert len(cap.attention) == 2 and len(derived) == 1
+    with torch.no_grad():
+        theirs = eager(ids, attention_mask=pad, output_attentions=True).attentions
+    for rec, ref in zip(cap.attention, theirs):
+        np.testing.assert_allclose(rec.weights, ref.numpy(), atol=1e-5)
+
+
 @pytest.mark.parametrize("keep", ["maps", "stats"])
 def test_sdpa_weights_mode_with_gqa_and_a_padding_mask_against_math(keep, monkeypatch):
     """Output of sdpa="weights" against an independent softmax(QKᵀ/√d + mask) @ V and torch's own kernel; with
