@@ -1,18 +1,20 @@
 """Where capture's own time goes inside a forward: each part timed where it runs, beside the forward it adds to.
 
-Run: ``python benchmarks/capture_parts.py [--repeats 10] [--batch 8] [--seq 256] [--heap as-is|warm]``
+Run: ``python benchmarks/capture_parts.py [--repeats 10] [--batch 8] [--seq 256] [--heap warm|as-is]`` (warm
+by default: the parts' own time, no case paying for fresh pages; see ``capture_overhead.WARM_HEAP``)
 
 The models of ``capture_overhead.py`` (6 layers x 8 heads, d 256: ``nn.TransformerEncoder``, GPT-2-shaped eager
 and SDPA), each captured with ``keep="maps"`` and ``keep="stats"``. In one process, plain and captured forwards
 alternate; during the captured ones a timer wraps each of capture's parts listed in :data:`PARTS` (the functions
 are replaced in their modules for the run, so the timed code is the code the capture runs). Printed per
-captured forward, in ms: what the capture adds to the plain forward (medians over the repeats), each part, and
+captured forward, in ms: what the capture adds to the plain forward (for ``nn.TransformerEncoder`` with torch's
+MHA fast path off, as capture runs it; ``capture_overhead.py`` prints what the fast path itself saves), each part, and
 what no listed part accounts for ("elsewhere": the hooks' own bodies, the torch function mode's dispatch of
 every call, and the model's own operations slowed by what capture's parts pushed out of the caches). Every figure
 is a median over the repeats. Parts nest (a path's handler contains the reductions it calls), so they are not
 summed; the outer parts (setup, teardown, handlers, residual norms) are, per forward, for the remainder. A
-handler's line leaves out the call it makes for the model, timed on the plain forward (for MHA with
-``keep="maps"`` that is torch's fused call, while capture runs its math path with weights, as the peer does).
+handler's line leaves out the call it makes for the model, timed on the plain forward (for MHA that call asks
+for no weights, while capture's ``keep="maps"`` runs it with weights, as the peer does).
 
 This is a diagnostic, not a target: capture_overhead.py holds the targets. Inside a forward every small
 operation runs on caches the model's large ones just swept (measured on the reference VM: a ``view`` of a
