@@ -313,6 +313,18 @@ def kept_bytes(cap) -> int:
 WARM_HEAP = {"MALLOC_MMAP_THRESHOLD_": str(32 * 2**20), "MALLOC_TRIM_THRESHOLD_": str(2**40)}
 
 
+def heap_as_asked(heap: str, script: str, argv: list[str] | None) -> None:
+    """With ``heap == "warm"``: run *script* again in a fresh process with :data:`WARM_HEAP` (the allocator
+    settings only take effect at start-up) and exit with its status; in that process, fault the heap in."""
+    if heap != "warm":
+        return
+    if os.environ.get("ATTNSCOPE_BENCH_WARM") != "1":
+        env = {**os.environ, **WARM_HEAP, "ATTNSCOPE_BENCH_WARM": "1"}
+        args = argv if argv is not None else sys.argv[1:]
+        sys.exit(subprocess.run([sys.executable, os.path.abspath(script), *args], env=env).returncode)
+    warm_heap()
+
+
 def warm_heap(total: int = 2**30) -> None:
     """Fault in *total* bytes of heap (16 MiB blocks, each below the mmap threshold) and free them: with
     :data:`WARM_HEAP` they stay in the heap for the forwards to reuse."""
@@ -338,13 +350,7 @@ def main(argv: list[str] | None = None) -> None:
                    help="as-is: the allocator as a process has it (fresh memory is faulted in, and a forward may "
                         "or may not get it); warm: times the computation alone (see WARM_HEAP)")
     a = p.parse_args(argv)
-    if a.heap == "warm" and os.environ.get("ATTNSCOPE_BENCH_WARM") != "1":
-        # the allocator settings only take effect in a fresh process
-        env = {**os.environ, **WARM_HEAP, "ATTNSCOPE_BENCH_WARM": "1"}
-        sys.exit(subprocess.run([sys.executable, os.path.abspath(__file__), *(argv if argv is not None else
-                                                                               sys.argv[1:])], env=env).returncode)
-    if a.heap == "warm":
-        warm_heap()
+    heap_as_asked(a.heap, __file__, argv)
     print(f"torch {torch.__version__}, {torch.get_num_threads()} threads, batch {a.batch}, T={a.seq}, "
           f"{LAYERS} layers x {HEADS} heads, d_model {D}; {a.repeats} interleaved rounds (ms: medians); heap {a.heap}")
     targets = []

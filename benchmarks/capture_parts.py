@@ -39,7 +39,7 @@ import torch
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))  # the repository: `benchmarks` imports
 if ROOT not in sys.path:
     sys.path.insert(0, ROOT)
-from benchmarks.capture_overhead import WARM_HEAP, build, slow_path, warm_heap  # noqa: E402
+from benchmarks.capture_overhead import build, heap_as_asked, slow_path  # noqa: E402
 
 #: (label, module, attribute, outer): the parts timed. ``outer`` parts do not contain each other and are summed
 #: for the remainder; the others run inside an outer one and are shown for where its time goes.
@@ -187,12 +187,7 @@ def main(argv: list[str] | None = None) -> None:
     p.add_argument("--seq", type=int, default=256)
     p.add_argument("--heap", choices=("as-is", "warm"), default="warm")
     a = p.parse_args(argv)
-    if a.heap == "warm" and os.environ.get("ATTNSCOPE_BENCH_WARM") != "1":
-        env = {**os.environ, **WARM_HEAP, "ATTNSCOPE_BENCH_WARM": "1"}  # allocator settings need a fresh process
-        sys.exit(subprocess.run([sys.executable, os.path.abspath(__file__), *(argv if argv is not None else
-                                                                               sys.argv[1:])], env=env).returncode)
-    if a.heap == "warm":
-        warm_heap()
+    heap_as_asked(a.heap, __file__, argv)
     print(f"torch {torch.__version__}, {torch.get_num_threads()} threads, batch {a.batch}, T={a.seq}; heap {a.heap}; "
           "ms per captured forward")
     for kind in ("encoder", "gpt2 eager", "gpt2 sdpa"):
