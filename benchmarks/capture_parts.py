@@ -10,16 +10,16 @@ are replaced in their modules for the run, so the timed code is the code the cap
 captured forward, in ms: what the capture adds to the plain forward (for ``nn.TransformerEncoder`` with torch's
 MHA fast path off, as capture runs it; ``capture_overhead.py`` prints what the fast path itself saves), each part, and
 what no listed part accounts for ("elsewhere": the hooks' own bodies, the torch function mode's dispatch of
-every call, and the model's own operations slowed by what capture's parts pushed out of the caches). Every figure
+every call, and whatever capture's parts cost the model's own operations). Every figure
 is a median over the repeats. Parts nest (a path's handler contains the reductions it calls), so they are not
 summed; the outer parts (setup, teardown, handlers, residual norms) are, per forward, for the remainder. A
 handler's line leaves out the call it makes for the model, timed on the plain forward (for MHA that call asks
 for no weights, while capture's ``keep="maps"`` runs it with weights, as the peer does).
 
 This is a diagnostic, not a target: capture_overhead.py holds the targets. Inside a forward every small
-operation runs on caches the model's large ones just swept (measured on the reference VM: a ``view`` of a
-16-byte tensor 9 µs inside against 1 µs in a loop), so the same part timed alone looks 3-10x cheaper; time parts
-here, where they run.
+operation takes 3-10x what it takes in a loop (measured on the reference VM: a ``view`` of a 16-byte tensor 9 µs
+inside against 1-2 µs in a loop; a large softmax or matrix product just before it outside a forward explains only
+part of that), so the same part timed alone looks cheaper than it is; time parts here, where they run.
 """
 
 from __future__ import annotations
