@@ -23,7 +23,7 @@ from attnscope.records import AttentionRecord, HeadSums, ResidualRecord
 from attnscope import stats as reductions
 from attnscope.stats import ScorePlan, head_sums
 
-__all__ = ["Frame", "Recorder", "as_4d", "take"]
+__all__ = ["LEAVES", "Frame", "Recorder", "as_4d", "is_leaf", "take"]
 
 _STATS_CHUNK_BYTES = 4 * 1024**2  # keep="stats" never builds more than this much of a map at once
 
@@ -148,6 +148,23 @@ class Recorder:
             stack.append(frame)
             if selected and name in self.map.attention and not self.muted:
                 self.counters.ran.add(name)
+            return None
+        return hook
+
+    def leaf_hook(self):
+        """A forward pre-hook (no kwargs) for one of torch's own leaf modules (:data:`LEAVES`): such a module never
+        calls attention and holds no module, so no frame is pushed for it (and it needs no post-hook); it only
+        notes, for the calling frame, that it consumed a candidate second sequence (cross-attention evidence)."""
+        def hook(module: nn.Module, args: tuple):
+            if threading.get_ident() != self.thread:
+                self.counters.foreign += 1
+                return None
+            stack = getattr(self._tls, "stack", None)
+            if stack:
+                parent = stack[-1]
+                if parent.others or (parent.owner is not None and parent.owner.others):
+                    with _unrouted():
+                        _note_consumed(parent, args)
             return None
         return hook
 
@@ -357,6 +374,20 @@ class Recorder:
         norms = torch.linalg.vector_norm(x.float(), dim=-1).numpy().copy()  # (B, T)
         self.residual.append(ResidualRecord(name=name, norms=norms, call=self.counters.blocks))
         self.counters.blocks += 1
+
+
+#: torch's own leaf modules whose forward calls no attention function and holds no module: capture gives them a
+#: light pre-hook (:meth:`Recorder.leaf_hook`) instead of a frame. Exact types only (a subclass may override
+#: forward), and only while the instance keeps the class's forward.
+LEAVES = frozenset(getattr(nn, n) for n in (
+    "Linear", "Bilinear", "LayerNorm", "RMSNorm", "GroupNorm", "BatchNorm1d", "BatchNorm2d", "Embedding", "Dropout",
+    "Dropout1d", "Dropout2d", "Dropout3d", "AlphaDropout", "Identity", "Conv1d", "Conv2d", "GELU", "ReLU", "SiLU",
+    "Tanh", "Sigmoid", "Mish", "LeakyReLU", "ELU", "Softplus") if hasattr(nn, n))
+
+
+def is_leaf(module: nn.Module) -> bool:
+    """Whether *module* is one of :data:`LEAVES`, with no child and its class's own forward."""
+    return type(module) in LEAVES and not module._modules and "forward" not in module.__dict__
 
 
 #: torch functions called inside it skip every torch function mode (capture's own, above all) and tensor subclass

@@ -28,7 +28,7 @@ from attnscope.capture.paths import PATHS
 from attnscope.capture.paths import flex as flex_path
 from attnscope.capture.paths import tap as tap_path
 from attnscope.capture.paths.softmax import FUNCS as _SOFTMAX_FUNCS
-from attnscope.capture.recorder import Recorder
+from attnscope.capture.recorder import Recorder, is_leaf
 from attnscope.capture.rules import CONTAINERS, module_label
 from attnscope.errors import (
     AttnscopeWarning,
@@ -264,7 +264,11 @@ class Capture:
             hold_fastpath_off()
             self._fastpath = True
             blocks = set(self._blocks)
+            leaf = self._rec.leaf_hook()
             for name, module in self._named:
+                if name not in blocks and is_leaf(module):  # torch's own leaf: no frame, no post-hook
+                    self._handles.append(module.register_forward_pre_hook(leaf))
+                    continue
                 self._handles.append(module.register_forward_pre_hook(self._rec.pre_hook(name), with_kwargs=True))
                 self._handles.append(module.register_forward_hook(self._rec.post_hook(name, name in blocks),
                                                                   always_call=True))

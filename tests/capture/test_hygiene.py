@@ -261,3 +261,46 @@ def test_a_model_changed_between_captures_is_mapped_again():
     assert map_model(model) is map_model(model)
     del model[2]
     assert "2" not in map_model(model).attention
+
+
+class _AttendingLinear(nn.Linear):
+    """A subclass of one of torch's leaves whose forward computes attention itself."""
+
+    def forward(self, x):
+        q = super().forward(x).unsqueeze(1)  # (B, 1, T, D)
+        return F.scaled_dot_product_attention(q, q, q, is_causal=True).squeeze(1)
+
+
+class _LeafNet(nn.Module):
+    def __init__(self, d=8):
+        super().__init__()
+        self.norm = nn.LayerNorm(d)
+        self.sub = _AttendingLinear(d, d)
+        self.patched = nn.Linear(d, d)
+        lin = self.patched
+        # an instance of a torch leaf whose forward was replaced by attention (as a hot patch would)
+        lin.forward = lambda x: F.scaled_dot_product_attention(*(F.linear(x, lin.weight, lin.bias).unsqueeze(1),) * 3,
+                                                               is_causal=True).squeeze(1)
+
+    def forward(self, x):
+        return self.patched(self.sub(self.norm(x)))
+
+
+def test_torch_leaves_get_a_light_hook_only_where_their_forward_is_torchs_own():
+    """torch's own leaf modules (LayerNorm, Linear, ...) get no frame of their own; a subclass, or an instance
+    whose forward was replaced, keeps one, so attention computed there is recorded under its name; a leaf named
+    in blocks= keeps its residual-stream norms. References: torch's own SDPA math (softmax(QKᵀ/√d) with the
+    causal mask) and the layer's output norm."""
+    torch.manual_seed(0)
+    net = _LeafNet().eval()
+    x = torch.randn(2, 5, 8)
+    with torch.no_grad(), attnscope.capture(net, blocks=["norm"]) as cap:
+        net(x)
+    assert [r.name for r in cap.attention] == ["sub", "patched"]
+    with torch.no_grad():
+        q = F.linear(net.norm(x), net.sub.weight, net.sub.bias).unsqueeze(1)  # (B, 1, T, D)
+        scores = (q @ q.transpose(-2, -1)) / np.sqrt(8)
+        want = scores.masked_fill(~torch.ones(5, 5, dtype=torch.bool).tril(), float("-inf")).softmax(-1)
+    np.testing.assert_allclose(cap.attention[0].weights, want.numpy(), atol=1e-6)
+    assert [r.name for r in cap.residual] == ["norm"]
+    np.testing.assert_allclose(cap.residual[0].norms, net.norm(x).detach().norm(dim=-1).numpy(), rtol=1e-6)
