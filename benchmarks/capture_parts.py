@@ -31,7 +31,6 @@ import functools
 import importlib
 import os
 import statistics
-import subprocess
 import sys
 import time
 
