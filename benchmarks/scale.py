@@ -267,8 +267,8 @@ def main(argv: list[str] | None = None) -> None:
     steps: dict[str, Callable[[], Any]] = {
         "plain forward": plain,
         PEER: peer,
-        "capture keep='maps'": captured,
-        "capture keep='stats'": captured_stats,
+        CAPTURE: captured,
+        STATS: captured_stats,
         "floor: matrix product of 144 heads' rows": lambda: gram_floor(cap),
         "floor: the same over the keys rows reach": lambda: gram_floor_reached(cap),
         "duplicate_heads": lambda: duplicate_heads(cap),
@@ -296,10 +296,11 @@ def main(argv: list[str] | None = None) -> None:
                 t0 = time.perf_counter()
                 res = fn()
             times[name].append(res if isinstance(res, Own) else time.perf_counter() - t0)
-            if name == "capture keep='maps'":
+            if name == CAPTURE:
                 kept = kept_bytes(res)
             del res
-    med = {k: statistics.median(v) for k, v in times.items()}
+    run = Paired(times)
+    med = run.t  # median seconds of each step
     fwd = med["plain forward"]
     mib = 2 ** 20
     size = os.path.getsize(page) if page.exists() else 0
@@ -326,7 +327,7 @@ def main(argv: list[str] | None = None) -> None:
             parts.append(f"peak {peaks[name] / kept:.2f}x kept, in this process (see the line below)")
         print(f"{name:<42} {med[name]:7.2f} {med[name] / fwd:7.1f} {peaks[name] / mib:8.0f} MiB  {'; '.join(parts)}")
     if CAPTURE in steps and STATS in steps:
-        ratio = Paired(times).ratio  # median over rounds of a / b in the same round
+        ratio = run.ratio  # median over rounds of a / b in the same round
         plain_of, maps_of = ratio(STATS, "plain forward"), ratio(STATS, CAPTURE)
         line = (f"capture at this size (medians of per-round ratios): keep='stats' {plain_of:.2f}x the plain forward "
                 f"(target <= 1.20x: {'met' if plain_of <= 1.2 else 'NOT met'}), {maps_of:.2f}x keep='maps' (target "
