@@ -25,3 +25,11 @@ def reference_means(w: torch.Tensor, offset: int) -> dict[str, np.ndarray]:
                "mean_distance": (w * dist).sum(-1),
                "leak_mass": np.zeros((b, h, tq))}  # nothing beyond the library's own mask
     return {k: v.mean(axis=(0, 2)) for k, v in per_row.items()}
+
+
+def assert_means_match(rec, w: torch.Tensor, label: str) -> None:
+    """Capture's ``keep="stats"`` record *rec* against :func:`reference_means` of the library's own weights *w* of
+    the same call (rtol and atol 1e-5: float32 reductions against float64), statistic by statistic."""
+    means = rec.stats.means()
+    for key, val in reference_means(w, rec.query_offset).items():
+        np.testing.assert_allclose(means[key], val, rtol=1e-5, atol=1e-5, err_msg=f"{label} {key}")

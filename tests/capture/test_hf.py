@@ -13,7 +13,7 @@ import pytest
 import torch
 
 import attnscope
-from reference_stats import reference_means  # tests/capture/reference_stats.py
+from reference_stats import assert_means_match  # tests/capture/reference_stats.py
 
 transformers = pytest.importorskip("transformers")
 
@@ -428,9 +428,7 @@ def test_sdpa_weights_option_on_every_family_with_an_sdpa_path(kind, family, mon
     for rec, srec, ref_w in zip(cap.attention, st.attention, ref_maps):
         _close_on_allowed(rec, ref_w)
         assert srec.weights is None and (srec.name, srec.kind, srec.shape) == (rec.name, rec.kind, rec.shape)
-        means = srec.stats.means()
-        for key, val in reference_means(ref_w, srec.query_offset).items():
-            np.testing.assert_allclose(means[key], val, rtol=1e-5, atol=1e-5, err_msg=f"{family} {rec.name} {key}")
+        assert_means_match(srec, ref_w, f"{family} {rec.name}")
 
 
 @pytest.mark.parametrize(("kind", "family", "impl"), _stats_cases())
@@ -449,6 +447,4 @@ def test_statistics_of_every_family_equal_scipy_on_hf_eager_maps(kind, family, i
     assert len(st.attention) == len(ref_maps)
     for rec, ref_w in zip(st.attention, ref_maps):
         assert rec.weights is None and rec.shape == tuple(ref_w.shape), (family, rec.name, rec.shape)
-        means = rec.stats.means()
-        for key, val in reference_means(ref_w, rec.query_offset).items():
-            np.testing.assert_allclose(means[key], val, rtol=1e-5, atol=1e-5, err_msg=f"{family} {rec.name} {key}")
+        assert_means_match(rec, ref_w, f"{family} {rec.name}")

@@ -15,7 +15,7 @@ import pytest
 import torch
 
 import attnscope
-from reference_stats import reference_means  # tests/capture/reference_stats.py
+from reference_stats import assert_means_match  # tests/capture/reference_stats.py
 
 xt = pytest.importorskip("x_transformers")
 
@@ -86,9 +86,7 @@ def test_statistics_and_the_weights_option_against_the_library_maps(flash, sdpa,
     assert len(cap.attention) == len(maps) == 2
     for rec, ref in zip(cap.attention, maps):
         assert rec.weights is None and rec.source == ("sdpa" if flash else "softmax")
-        means = rec.stats.means()
-        for key, val in reference_means(ref, rec.query_offset).items():
-            np.testing.assert_allclose(means[key], val, rtol=1e-5, atol=1e-5, err_msg=f"{rec.name} {key}")
+        assert_means_match(rec, ref, rec.name)
 
 
 @pytest.mark.parametrize("flash", [False, True])
