@@ -62,6 +62,7 @@ PARTS = [
     ("residual-stream norms", "attnscope.capture.recorder", "Recorder.record_residual", True),
 ]
 
+
 class Timers:
     """Accumulates seconds per label into ``current`` while ``on`` is set; wraps functions in place and puts them
     back."""
@@ -101,30 +102,17 @@ def _model_call_time(plain, repeats: int) -> dict[str, float]:
     """Seconds per forward the plain model spends in the calls capture's handlers run for it (its softmax, the
     fused SDPA kernel, torch's MHA call), each wrapped where the model looks it up (``torch.nn.functional``):
     the handler lines subtract them, to show capture's part only."""
-    import torch.nn.functional as F
-
-    spent: dict[str, float] = collections.defaultdict(float)
-    names = {"softmax": "softmax", "sdpa": "scaled_dot_product_attention", "mha": "multi_head_attention_forward"}
-    originals = {key: getattr(F, name) for key, name in names.items()}
-
-    def timed(key):
-        def call(*a, **kw):
-            t0 = time.perf_counter()
-            try:
-                return originals[key](*a, **kw)
-            finally:
-                spent[key] += time.perf_counter() - t0
-        return call
-
+    timers = Timers()
+    for key, name in (("softmax", "softmax"), ("sdpa", "scaled_dot_product_attention"),
+                      ("mha", "multi_head_attention_forward")):
+        timers.wrap(key, "torch.nn.functional", name)
+    timers.on = True
     try:
-        for key, name in names.items():
-            setattr(F, name, timed(key))
         for _ in range(repeats):
             plain()
     finally:
-        for key, name in names.items():
-            setattr(F, name, originals[key])
-    return {k: v / repeats for k, v in spent.items()}
+        timers.restore()
+    return {k: v / repeats for k, v in timers.current.items()}
 
 
 def run_case(kind: str, keep: str, batch: int, seq: int, repeats: int) -> None:
